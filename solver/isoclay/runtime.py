@@ -1,0 +1,43 @@
+"""Process-wide torch settings for shared CPUs: thread count, passive waiting, no denormals."""
+
+from __future__ import annotations
+
+import os
+
+_configured = False
+
+
+def free_cores() -> int:
+    """Cores this process may use, leaving one for Blender when more than two exist."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - macOS/Windows
+        n = os.cpu_count() or 1
+    return max(1, n - 1) if n > 2 else n
+
+
+def configure_torch(threads: int | None = None) -> None:
+    """Set threads and flush denormals once per process (see FACTS: denormal slowdowns).
+
+    OMP_WAIT_POLICY must be set before torch starts its OpenMP pool, so it is set here
+    only if the caller has not; the CLI entry point calls this before heavy work.
+    """
+    global _configured
+    os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+    import torch
+
+    if threads is None:
+        env = os.environ.get("ISOCLAY_THREADS")
+        threads = int(env) if env else free_cores()
+    torch.set_num_threads(max(1, threads))
+    torch.set_flush_denormal(True)
+    _configured = True
+
+
+def device():
+    """The torch device to use: CUDA when present, else CPU."""
+    import torch
+
+    if os.environ.get("ISOCLAY_DEVICE"):
+        return torch.device(os.environ["ISOCLAY_DEVICE"])
+    return torch.device("cuda" if torch.cuda.is_available() else "cpu")

@@ -1,0 +1,55 @@
+"""What every edit task shares: progress and stop callbacks, and the result record."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Protocol
+
+import numpy as np
+
+from ..errors import Cancelled
+from ..mesh.types import TriangleMesh
+
+
+class Progress(Protocol):
+    def __call__(self, stage: str, fraction: float, info: dict) -> None: ...
+
+
+def no_progress(stage: str, fraction: float, info: dict) -> None:
+    """A progress callback that ignores everything."""
+
+
+def never_stop() -> bool:
+    return False
+
+
+def check_stop(should_stop: Callable[[], bool], stage: str) -> None:
+    """Raise Cancelled when the user asked to stop; called between iterations of long loops."""
+    if should_stop():
+        raise Cancelled(f"cancelled during {stage}; nothing was written")
+
+
+@dataclass(frozen=True)
+class TaskResult:
+    """What an edit returns, in unit-box coordinates (the caller maps back to world units).
+
+    mesh : the result surface; for keep-topology edits the input's faces with moved vertices,
+        else a new watertight mesh; per-vertex values (e.g. "stretch", "bend", "moved") ride in
+        mesh.vertex_values
+    field : the edited field (SDFField) so a later edit can start from it, or None
+    metrics : scalar quality figures (handle_error_max, volume_change, ...), unit-box lengths
+        unless the name says otherwise
+    seconds : wall time per stage
+    """
+
+    mesh: TriangleMesh
+    field: object | None
+    metrics: dict[str, float] = field(default_factory=dict)
+    seconds: dict[str, float] = field(default_factory=dict)
+
+
+def face_normals(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
+    """(m, 3) unit normals of triangles (zero for degenerate ones)."""
+    n = np.cross(vertices[faces[:, 1]] - vertices[faces[:, 0]], vertices[faces[:, 2]] - vertices[faces[:, 0]])
+    length = np.linalg.norm(n, axis=1, keepdims=True)
+    return n / np.maximum(length, 1e-300)
