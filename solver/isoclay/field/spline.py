@@ -72,3 +72,57 @@ class SplineSDF(SDFField):
         outside = points - inside
         # distance to the grid box; the epsilon keeps the gradient finite at zero
         return f + torch.sqrt((outside * outside).sum(dim=1) + 1e-12) - 1e-6
+
+    def fast_values(self, points: np.ndarray) -> np.ndarray:
+        """Values only, (n, 3) -> (n,) float32, by scipy's compiled spline evaluation (~7x faster).
+
+        Same function as forward() (to float32 rounding); used where no derivatives are needed.
+        """
+        import scipy.ndimage
+
+        e = self.half_extent
+        p = np.asarray(points, dtype=np.float64)
+        inside = np.clip(p, -e, e)
+        index = (inside + e) / self.cell + 1.0  # coefficient array starts at node -1
+        coefficients = self.coefficients.detach().cpu().numpy()
+        f = scipy.ndimage.map_coordinates(coefficients, index.T, order=3, prefilter=False, mode="nearest")
+        outside = p - inside
+        return (f + np.sqrt((outside * outside).sum(axis=1) + 1e-12) - 1e-6).astype(np.float32)
+
+
+def spline_from_node_values(values: np.ndarray, half_extent: float = DEFAULT_HALF_EXTENT) -> SplineSDF:
+    """A SplineSDF that interpolates signed distances given at its nodes.
+
+    values : (R + 3, R + 3, R + 3) float, the field at node_positions() along each axis
+    (nodes -1 .. R+1). Cubic B-spline prefiltering (Unser 1999, "Splines: a perfect fit
+    for signal and image processing") turns samples into coefficients so the spline passes
+    through every sample.
+    """
+    import scipy.ndimage
+
+    values = np.asarray(values, dtype=np.float64)
+    side = values.shape[0]
+    coefficients = scipy.ndimage.spline_filter(values, order=3, mode="mirror", output=np.float64)
+    return SplineSDF(side - 3, half_extent, torch.from_numpy(coefficients.astype(np.float32)))
+
+
+def spline_from_distances(values: np.ndarray, half_extent: float = DEFAULT_HALF_EXTENT) -> SplineSDF:
+    """A SplineSDF approximating distances sampled at its nodes, smooth enough for curvature.
+
+    Exact interpolation (spline_from_node_values) reproduces the kinks that a faceted mesh
+    leaves in its distance field: measured on a 256 x 96 torus mesh at resolution 96, mean
+    curvature off by 10% rms. Using the samples as coefficients (quasi-interpolation)
+    smooths them but shifts the surface by about h^2 H / 3. This keeps the smoothing and
+    removes the shift to second order: c = v - B^2(L v) / 6, with L the discrete Laplacian
+    and B the [1, 4, 1] / 6 B-spline sampling filter per axis (measured: 2.9% rms curvature
+    error, surface offset 5e-5 unit-box lengths, like exact interpolation).
+    """
+    import scipy.ndimage
+
+    v = np.asarray(values, dtype=np.float64)
+    laplacian = sum(scipy.ndimage.correlate1d(v, [1.0, -2.0, 1.0], axis=a, mode="nearest") for a in range(3))
+    for _ in range(2):
+        for axis in range(3):
+            laplacian = scipy.ndimage.correlate1d(laplacian, [1 / 6, 4 / 6, 1 / 6], axis=axis, mode="nearest")
+    coefficients = v - laplacian / 6.0
+    return SplineSDF(v.shape[0] - 3, half_extent, torch.from_numpy(coefficients.astype(np.float32)))

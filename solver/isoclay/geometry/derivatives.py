@@ -75,6 +75,9 @@ def evaluate(field, points, with_hessian: bool = False, chunk: int = CHUNK) -> F
 
 def values(field, points, chunk: int = 262144) -> np.ndarray:
     """(n,) float32 field values, no derivatives (fast path for extraction)."""
+    fast = getattr(field, "fast_values", None)
+    if fast is not None:
+        return np.concatenate([fast(points[i : i + chunk]) for i in range(0, len(points), chunk)]) if len(points) else np.zeros(0, np.float32)
     x = as_points(points)
     out = np.empty(len(x), dtype=np.float32)
     with torch.no_grad():

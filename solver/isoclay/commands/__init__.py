@@ -1,0 +1,1 @@
+"""Subcommands of the `isoclay` command, one module each (add_parser, run)."""

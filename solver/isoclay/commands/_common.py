@@ -1,0 +1,74 @@
+"""Helpers the edit subcommands share: read input, fit options, write outputs and reports."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+from ..errors import InvalidInput
+from ..field.fit import FitConfig
+from ..mesh.io import FORMATS, read_mesh, write_mesh
+from ..pipeline import EditOutcome, Prepared, prepare_mesh
+
+
+def add_input_output(parser, out_help: str = "result mesh (.ply, .obj, .stl, .glb, .gltf)") -> None:
+    parser.add_argument("mesh", help="input mesh: PLY, OBJ, STL or glTF")
+    parser.add_argument("--out", required=True, help=out_help)
+    parser.add_argument("--report", help="write a JSON report (timings, sizes, quality figures)")
+
+
+def add_fit_options(parser) -> None:
+    group = parser.add_argument_group("field fit")
+    group.add_argument("--field-resolution", type=int, default=FitConfig.resolution,
+                       help=f"grid cells per axis of the fitted field (default {FitConfig.resolution}); "
+                            "details smaller than about 1/%(default)s of the object get rounded")
+    group.add_argument("--fit-steps", type=int, default=FitConfig.steps,
+                       help="extra Adam refinement steps with an eikonal term (default %(default)s)")
+    group.add_argument("--architecture", choices=("spline", "mlp"), default=FitConfig.architecture,
+                       help="field model: spline grid (fast, default) or positional-encoding MLP (reference)")
+    group.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+
+
+def fit_config_from(args) -> FitConfig:
+    return FitConfig(architecture=args.architecture, resolution=args.field_resolution, steps=args.fit_steps, seed=args.seed).validated()
+
+
+def check_output_path(path: str) -> Path:
+    """Refuse an output path we cannot write before spending minutes on the work."""
+    out = Path(path)
+    if out.suffix.lower() not in FORMATS:
+        raise InvalidInput(f"{out.name}: unsupported output type {out.suffix or '(none)'}; use one of {', '.join(FORMATS)}")
+    if not out.parent.exists():
+        raise InvalidInput(f"{out.parent}: output folder does not exist")
+    if out.is_dir():
+        raise InvalidInput(f"{out}: is a folder, give a file name")
+    if not os.access(out.parent, os.W_OK):
+        raise InvalidInput(f"{out.parent}: output folder is not writable")
+    return out
+
+
+def load_input(path: str, ui) -> Prepared:
+    """Read and validate the input mesh; warnings go to the user."""
+    mesh = read_mesh(path)
+    prepared = prepare_mesh(mesh, Path(path).name)
+    for line in prepared.check.warnings:
+        ui.warn(f"{Path(path).name}: {line}")
+    return prepared
+
+
+def write_outputs(outcome: EditOutcome, out: Path, report_path: str | None, ui, keep_topology: bool = False) -> None:
+    """Write the result mesh (UVs/materials kept when the topology is the input's) and the report."""
+    write_mesh(out, outcome.mesh, keep_source=keep_topology)
+    ui.info(f"wrote {out} ({outcome.mesh.n_vertices} vertices, {outcome.mesh.n_faces} faces) in {outcome.seconds['total']:.1f} s")
+    if report_path:
+        write_report(report_path, outcome.report)
+
+
+def write_report(path: str, report: dict) -> None:
+    target = Path(path)
+    if not target.parent.exists():
+        raise InvalidInput(f"{target.parent}: report folder does not exist")
+    tmp = target.with_name(f".{target.name}.partial")
+    tmp.write_text(json.dumps(report, indent=2, sort_keys=True, allow_nan=True))
+    os.replace(tmp, target)

@@ -1,0 +1,26 @@
+"""`isoclay remesh MESH --out OUT.ply`: fit a field and extract a clean watertight mesh."""
+
+from __future__ import annotations
+
+from ..pipeline import run_edit
+from ._common import add_fit_options, add_input_output, check_output_path, fit_config_from, load_input, write_outputs
+
+
+def add_parser(sub):
+    p = sub.add_parser("remesh", help="turn a broken scan into a clean watertight mesh",
+                       description="Fit a field to the mesh and extract its surface as a closed, consistently oriented mesh.")
+    add_input_output(p)
+    p.add_argument("--resolution", type=int, default=256, help="marching-cubes cells along the longest side (default 256)")
+    p.add_argument("--target-faces", type=int, default=0, help="decimate to at most this many faces (default: keep all)")
+    add_fit_options(p)
+    return p
+
+
+def run(args, ui) -> int:
+    out = check_output_path(args.out)
+    config = fit_config_from(args)
+    prepared = load_input(args.mesh, ui)
+    outcome = run_edit(prepared.world, "remesh", {"resolution": args.resolution, "target_faces": args.target_faces},
+                       fit_config=config, progress=ui.progress, should_stop=ui.should_stop, prepared=prepared)
+    write_outputs(outcome, out, args.report, ui)
+    return 0

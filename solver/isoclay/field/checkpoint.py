@@ -1,0 +1,67 @@
+"""Field checkpoints: weights + constructor config + format version, loadable with weights_only=True."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import torch
+
+from ..errors import InvalidInput
+from . import analytic
+from .base import SDFField
+from .mlp import MLPSDF
+from .spline import SplineSDF
+
+FORMAT_VERSION = 1
+
+#: kind -> class; modules defining new field kinds (e.g. warped fields) call register_field_kind.
+FIELD_KINDS: dict[str, type] = {SplineSDF.kind: SplineSDF, MLPSDF.kind: MLPSDF, **analytic.ANALYTIC_KINDS}
+
+
+def register_field_kind(cls: type) -> type:
+    """Make a field class loadable from checkpoints (usable as a class decorator)."""
+    FIELD_KINDS[cls.kind] = cls
+    return cls
+
+
+def field_to_dict(field: SDFField) -> dict:
+    """A plain dict of tensors, numbers and strings describing the field (nested fields allowed)."""
+    return {"kind": field.kind, "config": field.config(), "state": {k: v.detach().cpu() for k, v in field.state_dict().items()}}
+
+
+def field_from_dict(data: dict) -> SDFField:
+    cls = FIELD_KINDS.get(data.get("kind"))
+    if cls is None:
+        raise InvalidInput(f"checkpoint holds an unknown field kind {data.get('kind')!r}: update isoclay")
+    build = getattr(cls, "from_config", None)
+    field = build(data["config"]) if build else cls(**data["config"])
+    field.load_state_dict(data["state"])
+    return field.eval()
+
+
+def save_field(path: str | os.PathLike, field: SDFField, extra: dict | None = None) -> None:
+    """Write atomically (temp file, fsync, rename) so a crash never leaves half a checkpoint."""
+    path = Path(path)
+    payload = {"format_version": FORMAT_VERSION, "field": field_to_dict(field), "extra": dict(extra or {})}
+    tmp = path.with_name(f".{path.name}.partial")
+    with open(tmp, "wb") as fh:
+        torch.save(payload, fh)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def load_field(path: str | os.PathLike) -> tuple[SDFField, dict]:
+    """(field, extra) from a checkpoint written by save_field."""
+    path = Path(path)
+    if not path.is_file():
+        raise InvalidInput(f"{path}: no such field checkpoint")
+    try:
+        payload = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:
+        raise InvalidInput(f"{path.name} is not an isoclay field checkpoint ({type(exc).__name__}): refit with `isoclay fit`") from None
+    version = payload.get("format_version") if isinstance(payload, dict) else None
+    if version != FORMAT_VERSION:
+        raise InvalidInput(f"{path.name} has checkpoint format {version!r}, this isoclay reads {FORMAT_VERSION}: refit with `isoclay fit`")
+    return field_from_dict(payload["field"]), payload.get("extra", {})

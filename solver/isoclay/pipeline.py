@@ -1,0 +1,155 @@
+"""One edit from start to finish: validate, normalise, fit (or reuse) a field, run the task, map back.
+
+The command line and the service's workers both call run_edit; nothing here knows about
+sockets or terminals.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import time
+from dataclasses import dataclass, field as dc_field
+
+import numpy as np
+
+from .field.base import SDFField
+from .field.fit import FitConfig, fit_field
+from .mesh import measures
+from .mesh.normalize import Normalization
+from .mesh.types import TriangleMesh
+from .mesh.validate import MeshCheck, validate_mesh
+from .tasks.base import never_stop, no_progress
+from .tasks.registry import task_module
+
+#: Metrics that tasks report as unit-box lengths; the report converts them to the mesh's units
+#: and adds a twin ending in "_rel" (fraction of the bounding-box diagonal). Any metric whose
+#: name ends in "_length" is treated the same way.
+LENGTH_METRICS = {"handle_error_max", "handle_error_mean", "moved_max", "moved_mean", "gap_max", "gap_mean"}
+
+
+@dataclass(frozen=True)
+class Prepared:
+    """A validated input: world (as given), check (cleaned mesh + warnings), normalization,
+    unit (cleaned mesh in the unit box), mesh_hash (64 hex)."""
+
+    world: TriangleMesh
+    check: MeshCheck
+    normalization: Normalization
+    unit: TriangleMesh
+    mesh_hash: str
+
+
+def mesh_hash(vertices: np.ndarray, faces: np.ndarray) -> str:
+    """sha256 of the float64 vertices and int64 faces (C order): the mesh's content address."""
+    h = hashlib.sha256()
+    h.update(np.ascontiguousarray(vertices, dtype="<f8").tobytes())
+    h.update(b"|")
+    h.update(np.ascontiguousarray(faces, dtype="<i8").tobytes())
+    return h.hexdigest()
+
+
+def fit_key(mesh_hash_hex: str, config: FitConfig) -> str:
+    """Cache key of a fitted field: the mesh content and every fit setting."""
+    text = json.dumps({"mesh": mesh_hash_hex, "fit": config.to_dict()}, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def prepare_mesh(mesh: TriangleMesh, name: str = "mesh") -> Prepared:
+    """Validate (InvalidMesh on unusable input) and normalise a mesh given in world units."""
+    check = validate_mesh(mesh, name)
+    used = np.unique(check.mesh.faces)
+    normalization = Normalization.of(check.mesh.vertices[used])
+    unit = normalization.mesh_to_unit(check.mesh)
+    return Prepared(mesh, check, normalization, unit, mesh_hash(mesh.vertices, mesh.faces))
+
+
+@dataclass(frozen=True)
+class EditOutcome:
+    """mesh : result in world units (vertex_values carried); field : the field the edit started
+    from; result_field : the edited field or None; report : JSON-ready summary."""
+
+    mesh: TriangleMesh
+    field: SDFField
+    result_field: SDFField | None
+    normalization: Normalization
+    mesh_hash: str
+    fit_key: str
+    metrics: dict
+    seconds: dict
+    warnings: tuple
+    report: dict = dc_field(default_factory=dict)
+
+
+def world_metrics(metrics: dict, normalization: Normalization, diagonal: float) -> dict:
+    """Convert unit-box length metrics to world units, adding *_rel twins."""
+    out = {}
+    for key, value in metrics.items():
+        value = float(value)
+        if key in LENGTH_METRICS or key.endswith("_length"):
+            world = normalization.length_from_unit(value)
+            out[key] = world
+            out[f"{key}_rel"] = world / diagonal if diagonal > 0 else float("nan")
+        else:
+            out[key] = value
+    return out
+
+
+def run_edit(
+    mesh: TriangleMesh,
+    task: str,
+    params: dict,
+    *,
+    field: SDFField | None = None,
+    fit_config: FitConfig | None = None,
+    progress=no_progress,
+    should_stop=never_stop,
+    seed: int = 0,
+    prepared: Prepared | None = None,
+) -> EditOutcome:
+    """Run one task on a world-units mesh. Parameters are checked before any fitting starts."""
+    t0 = time.perf_counter()
+    prepared = prepared or prepare_mesh(mesh)
+    module = task_module(task)
+    config = module.Config.from_params(dict(params), prepared.normalization)
+    fit_config = fit_config or FitConfig(seed=seed)
+    seconds: dict = {"prepare": time.perf_counter() - t0}
+    if field is None:
+        fitted = fit_field(prepared.unit, fit_config, progress, should_stop, np.random.default_rng(seed))
+        field = fitted.field
+        seconds["fit"] = fitted.seconds["total"]
+    result = module.run(field, prepared.unit, config, progress, should_stop)
+    seconds.update({k: float(v) for k, v in result.seconds.items()})
+    world = prepared.normalization.mesh_from_unit(result.mesh)
+    seconds["total"] = time.perf_counter() - t0
+    diagonal = measures.bbox_diagonal(prepared.check.mesh.vertices[np.unique(prepared.check.mesh.faces)])
+    metrics = world_metrics(result.metrics, prepared.normalization, diagonal)
+    report = {
+        "task": task,
+        "params": _jsonable(params),
+        "seconds": seconds,
+        "bbox_diagonal": diagonal,
+        "vertices": world.n_vertices,
+        "faces": world.n_faces,
+        "watertight": measures.is_watertight(world.faces),
+        "input": {"vertices": mesh.n_vertices, "faces": mesh.n_faces, "hash": prepared.mesh_hash},
+        "warnings": list(prepared.check.warnings),
+        "fit": fit_config.to_dict(),
+        **metrics,
+    }
+    return EditOutcome(
+        world, field, result.field, prepared.normalization, prepared.mesh_hash,
+        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, prepared.check.warnings, report,
+    )
+
+
+def _jsonable(value):
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, (np.floating, np.integer)):
+        return value.item()
+    return value

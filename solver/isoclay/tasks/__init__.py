@@ -1,0 +1,1 @@
+"""Edit tasks (deform, smooth, sharpen, remesh): a config dataclass and run() each."""
