@@ -38,9 +38,14 @@ def read_mesh(path: str | os.PathLike) -> TriangleMesh:
     if path.stat().st_size == 0:
         raise InvalidMesh(f"{path.name} is an empty file: export the mesh again")
     try:
-        loaded = trimesh.load(str(path), file_type=fmt, force="mesh", process=False)
+        loaded = trimesh.load(str(path), file_type=fmt, process=False)
+        if isinstance(loaded, trimesh.Scene):  # glTF/OBJ with several objects: merge in world space
+            parts = [g for g in loaded.dump(concatenate=False) if isinstance(g, trimesh.Trimesh)]
+            loaded = trimesh.util.concatenate(parts) if parts else loaded
     except Exception as exc:  # trimesh raises many types for corrupt files
         raise InvalidMesh(f"{path.name} could not be read as {fmt.upper()} ({type(exc).__name__}: {exc}): re-export it") from None
+    if isinstance(loaded, trimesh.PointCloud):
+        raise InvalidMesh(f"{path.name} has no faces ({len(loaded.vertices)} loose points): isoclay needs a surface, not a point cloud")
     if not isinstance(loaded, trimesh.Trimesh):
         raise InvalidMesh(f"{path.name} holds no triangle mesh (found {type(loaded).__name__})")
     vertices = np.array(loaded.vertices, dtype=np.float64)
