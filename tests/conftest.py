@@ -3,7 +3,11 @@
 import os
 import sys
 
+import tempfile
+
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+# Blender reads its user folders when bpy is imported: keep tests away from ~/.config/blender
+os.environ.setdefault("BLENDER_USER_RESOURCES", tempfile.mkdtemp(prefix="isoclay-blender-user-"))
 
 try:  # the Blender tests run in .venv-blender (bpy), the rest in .venv (torch)
     import bpy  # noqa: F401
