@@ -26,6 +26,8 @@ from .tasks.registry import task_module
 #: and adds a twin ending in "_rel" (fraction of the bounding-box diagonal). Any metric whose
 #: name ends in "_length" is treated the same way.
 LENGTH_METRICS = {"handle_error_max", "handle_error_mean", "moved_max", "moved_mean", "gap_max", "gap_mean"}
+#: Per-vertex values that tasks give in unit-box lengths; written in the mesh's units.
+LENGTH_VERTEX_VALUES = {"moved"}
 
 
 @dataclass(frozen=True)
@@ -121,6 +123,8 @@ def run_edit(
     result = module.run(field, prepared.unit, config, progress, should_stop)
     seconds.update({k: float(v) for k, v in result.seconds.items()})
     world = prepared.normalization.mesh_from_unit(result.mesh)
+    for name in LENGTH_VERTEX_VALUES & set(world.vertex_values):
+        world.vertex_values[name] = (world.vertex_values[name] / prepared.normalization.scale).astype(np.float32)
     seconds["total"] = time.perf_counter() - t0
     diagonal = measures.bbox_diagonal(prepared.check.mesh.vertices[np.unique(prepared.check.mesh.faces)])
     metrics = world_metrics(result.metrics, prepared.normalization, diagonal)

@@ -9,6 +9,9 @@ from ..errors import InvalidInput
 #: Every task the command line and the service accept.
 TASK_MODULES = {
     "remesh": "isoclay.tasks.remesh",
+    "deform": "isoclay.tasks.deform",
+    "smooth": "isoclay.tasks.smooth",
+    "sharpen": "isoclay.tasks.sharpen",
 }
 
 

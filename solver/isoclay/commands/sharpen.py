@@ -1,0 +1,35 @@
+"""`isoclay sharpen MESH --amount A --out OUT.ply`: crisp rounded creases toward the edge their sides make."""
+
+from __future__ import annotations
+
+from ..pipeline import run_edit
+from ._common import add_fit_options, add_input_output, check_output_path, fit_config_from, load_input, write_outputs
+
+
+def add_parser(sub):
+    p = sub.add_parser("sharpen", help="crisp softened edges and corners",
+                       description="Fit a field to the mesh and move its rounded creases toward the sharp edge "
+                                   "their flat sides make; flat faces and gently curved parts stay as they are.")
+    add_input_output(p)
+    p.add_argument("--amount", type=float, required=True,
+                   help="0..1: fraction of the way from the rounded to the fully sharp edge")
+    p.add_argument("--radius", type=float, default=None,
+                   help="largest rounding to sharpen, in the mesh's units (default: 1/20 of the object's longest side)")
+    p.add_argument("--keep-topology", action="store_true",
+                   help="move the input's own vertices onto the sharpened surface (keeps UVs)")
+    p.add_argument("--resolution", type=int, default=256, help="marching-cubes cells along the longest side (default 256)")
+    add_fit_options(p)
+    return p
+
+
+def run(args, ui) -> int:
+    out = check_output_path(args.out)
+    config = fit_config_from(args)
+    params = {"amount": args.amount, "keep_topology": args.keep_topology, "resolution": args.resolution}
+    if args.radius is not None:
+        params["radius"] = args.radius
+    prepared = load_input(args.mesh, ui)
+    outcome = run_edit(prepared.world, "sharpen", params, fit_config=config, progress=ui.progress,
+                       should_stop=ui.should_stop, prepared=prepared)
+    write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology)
+    return 0
