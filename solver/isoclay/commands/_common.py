@@ -9,7 +9,9 @@ from pathlib import Path
 from ..errors import InvalidInput
 from ..field.fit import FitConfig
 from ..mesh.io import FORMATS, read_mesh, write_mesh
-from ..pipeline import EditOutcome, Prepared, prepare_mesh
+from ..mesh.types import TriangleMesh
+from ..pipeline import Prepared, prepare_mesh, run_edit
+from ..service.remote import add_remote_options, connection_from, remote_requested, run_remote_edit
 
 
 def add_input_output(parser, out_help: str = "result mesh (.ply, .obj, .stl, .glb, .gltf)") -> None:
@@ -28,6 +30,32 @@ def add_fit_options(parser) -> None:
     group.add_argument("--architecture", choices=("spline", "mlp"), default=FitConfig.architecture,
                        help="field model: spline grid (fast, default) or positional-encoding MLP (reference)")
     group.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+
+
+def add_edit_options(parser) -> None:
+    """Fit options plus the optional solver service to run the edit on."""
+    add_fit_options(parser)
+    add_remote_options(parser)
+
+
+def run_task(args, ui, task: str, params: dict, prepared: Prepared):
+    """Run an edit in this process, or on a running solver when --connection-file/--endpoint is given.
+
+    Returns an object with ``mesh`` (world units) and ``report`` (JSON-ready, with seconds.total).
+    """
+    config = fit_config_from(args)
+    if remote_requested(args):
+        outcome = run_remote_edit(connection_from(args), prepared.world, task, params,
+                                  source_key=args.source_key or Path(args.mesh).name, fit=config.to_dict(),
+                                  progress=ui.progress, should_stop=ui.should_stop)
+        for line in outcome.warnings:
+            ui.warn(line)
+        mesh = outcome.mesh
+        # the service returns plain arrays; keep the input's UVs/materials for keep-topology writes
+        return type(outcome)(TriangleMesh(mesh.vertices, mesh.faces, mesh.vertex_values, prepared.world.source),
+                             outcome.report, outcome.metrics, outcome.node_id, outcome.job_id, outcome.warnings)
+    return run_edit(prepared.world, task, params, fit_config=config, progress=ui.progress,
+                    should_stop=ui.should_stop, prepared=prepared)
 
 
 def fit_config_from(args) -> FitConfig:
@@ -57,10 +85,11 @@ def load_input(path: str, ui) -> Prepared:
     return prepared
 
 
-def write_outputs(outcome: EditOutcome, out: Path, report_path: str | None, ui, keep_topology: bool = False) -> None:
+def write_outputs(outcome, out: Path, report_path: str | None, ui, keep_topology: bool = False) -> None:
     """Write the result mesh (UVs/materials kept when the topology is the input's) and the report."""
     write_mesh(out, outcome.mesh, keep_source=keep_topology)
-    ui.info(f"wrote {out} ({outcome.mesh.n_vertices} vertices, {outcome.mesh.n_faces} faces) in {outcome.seconds['total']:.1f} s")
+    seconds = outcome.report.get("seconds", {}).get("total", float("nan"))
+    ui.info(f"wrote {out} ({outcome.mesh.n_vertices} vertices, {outcome.mesh.n_faces} faces) in {seconds:.1f} s")
     if report_path:
         write_report(report_path, outcome.report)
 

@@ -2,8 +2,7 @@
 
 from __future__ import annotations
 
-from ..pipeline import run_edit
-from ._common import add_fit_options, add_input_output, check_output_path, fit_config_from, load_input, write_outputs
+from ._common import add_edit_options, add_input_output, check_output_path, fit_config_from, load_input, run_task, write_outputs
 
 
 def add_parser(sub):
@@ -19,17 +18,16 @@ def add_parser(sub):
                    help="move the input's own vertices onto the smoothed surface (keeps UVs); "
                         "per-vertex 'moved' distance goes into the PLY")
     p.add_argument("--resolution", type=int, default=256, help="marching-cubes cells along the longest side (default 256)")
-    add_fit_options(p)
+    add_edit_options(p)
     return p
 
 
 def run(args, ui) -> int:
     out = check_output_path(args.out)
-    config = fit_config_from(args)
+    fit_config_from(args)  # refuse bad fit options before reading the mesh
     params = {"strength": args.strength, "preserve_volume": args.preserve_volume,
               "keep_topology": args.keep_topology, "resolution": args.resolution}
     prepared = load_input(args.mesh, ui)
-    outcome = run_edit(prepared.world, "smooth", params, fit_config=config, progress=ui.progress,
-                       should_stop=ui.should_stop, prepared=prepared)
+    outcome = run_task(args, ui, "smooth", params, prepared)
     write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology)
     return 0

@@ -1,0 +1,1 @@
+"""The solver service: ZeroMQ server, jobs in limited worker processes, authentication (no torch here)."""

@@ -1,0 +1,263 @@
+"""The job worker: one spawned process per job, with memory and CPU limits, talking to the server over a pipe.
+
+Messages to the server: ("progress", stage, fraction, info) at most 10 per second,
+("done", record), ("cancelled", message), ("failed", code, message). The server sends
+("cancel",) to ask for a cooperative stop; it terminates the process if that takes too long.
+Torch is imported here (for fitting tasks), never in the server process.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+
+PROGRESS_INTERVAL_S = 0.1
+
+
+def set_limits(memory_bytes: int | None, cpu_seconds: float | None) -> None:
+    """Address-space and CPU-time limits for this process (Linux/macOS; no-op elsewhere)."""
+    try:
+        import resource
+    except ImportError:  # pragma: no cover - Windows
+        return
+    try:
+        if memory_bytes:
+            resource.setrlimit(resource.RLIMIT_AS, (int(memory_bytes), int(memory_bytes)))
+        if cpu_seconds:
+            soft = int(math.ceil(cpu_seconds))
+            resource.setrlimit(resource.RLIMIT_CPU, (soft, soft + 5))
+    except (ValueError, OSError):  # e.g. macOS refuses RLIMIT_AS; the wall-clock limit still holds
+        pass
+
+
+def die_with_parent() -> None:
+    """Ask Linux to SIGKILL this worker when the server dies (kill -9 included)."""
+    try:
+        import ctypes
+        import signal
+
+        libc = ctypes.CDLL("libc.so.6", use_errno=True)
+        libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):  # pragma: no cover - not Linux
+        pass
+
+
+class _Channel:
+    """Progress throttling and cancel checks over the pipe to the server."""
+
+    def __init__(self, conn, parent_pid: int):
+        self.conn = conn
+        self.parent_pid = parent_pid
+        self.last = 0.0
+        self.cancelled = False
+        self.pending = None
+
+    def progress(self, stage: str, fraction: float, info: dict | None = None) -> None:
+        now = time.monotonic()
+        if now - self.last < PROGRESS_INTERVAL_S:
+            self.pending = (stage, fraction, info)  # sent at the next slot, so the latest state is never lost
+            return
+        self.last = now
+        self.pending = None
+        self.conn.send(("progress", str(stage)[:64], float(fraction), _plain_info(info)))
+
+    def should_stop(self) -> bool:
+        if self.pending is not None and time.monotonic() - self.last >= PROGRESS_INTERVAL_S:
+            self.progress(*self.pending)
+        if self.cancelled:
+            return True
+        if os.getppid() != self.parent_pid:
+            self.cancelled = True  # the server is gone: nobody will collect the result
+            return True
+        try:
+            while self.conn.poll(0):
+                if self.conn.recv()[0] == "cancel":
+                    self.cancelled = True
+        except (EOFError, OSError):
+            self.cancelled = True
+        return self.cancelled
+
+
+def _plain_info(info) -> dict:
+    out = {}
+    for k, v in list((info or {}).items())[:8]:
+        if isinstance(v, bool) or isinstance(v, int) and abs(v) < 2**53:
+            out[str(k)[:32]] = v
+        elif isinstance(v, float) and math.isfinite(v):
+            out[str(k)[:32]] = v
+        elif isinstance(v, str):
+            out[str(k)[:32]] = v[:120]
+    return out
+
+
+def main(conn, spec: dict) -> None:
+    """Process entry point: run one job and report exactly one final message."""
+    die_with_parent()
+    set_limits(spec.get("memory_bytes"), spec.get("cpu_seconds"))
+    channel = _Channel(conn, spec["parent_pid"])
+    from ..errors import Cancelled, InvalidInput, InvalidMesh, IsoclayError
+
+    try:
+        record = run_job(spec, channel)
+        conn.send(("done", record))
+    except Cancelled as exc:
+        conn.send(("cancelled", str(exc)))
+    except InvalidMesh as exc:
+        conn.send(("failed", "invalid_mesh", str(exc)))
+    except InvalidInput as exc:
+        conn.send(("failed", "invalid_input", str(exc)))
+    except IsoclayError as exc:
+        conn.send(("failed", "job_failed", str(exc)))
+    except MemoryError:
+        conn.send(("failed", "job_failed", "ran out of memory within the solver's limit: decimate the mesh, lower the "
+                                           "resolution, or raise --memory-limit"))
+    except Exception as exc:  # one line for the user; the server keeps serving
+        text = " ".join(str(exc).split())[:200]
+        conn.send(("failed", "job_failed", f"internal error in the worker ({type(exc).__name__}: {text})"))
+    finally:
+        conn.close()
+
+
+def run_job(spec: dict, channel: _Channel) -> dict:
+    from ..errors import Cancelled
+    from ..history.blobs import BlobStore, pack_mesh, unpack_mesh
+
+    blobs = BlobStore(spec["blob_root"])
+    v, f, values = unpack_mesh(blobs.read(spec["input_blob"]))
+    if spec["task"] == "echo":
+        return _test_echo(spec, channel, blobs, v, f)
+
+    import numpy as np
+
+    from ..errors import InvalidInput
+    from ..field.cache import FieldCache
+    from ..mesh.types import TriangleMesh
+    from ..runtime import configure_torch
+
+    configure_torch(spec.get("threads"))
+    from ..field.checkpoint import load_field, save_field
+    from ..field.fit import FitConfig
+    from ..pipeline import fit_key, prepare_mesh, run_edit
+
+    params = dict(spec["params"])
+    fit_settings = params.pop("fit", None) or {}
+    if not isinstance(fit_settings, dict):
+        raise InvalidInput("params.fit must be a map of fit settings (resolution, steps, ...)")
+    try:
+        fit_config = FitConfig(**{"seed": int(spec.get("seed", 0)), **fit_settings})
+        fit_config = fit_config.validated() if hasattr(fit_config, "validated") else fit_config
+    except TypeError as exc:
+        raise InvalidInput(f"unknown fit setting in params.fit ({exc}): see FitConfig's fields") from None
+    mesh = TriangleMesh(np.array(v), np.array(f))
+    prepared = prepare_mesh(mesh)
+    key = fit_key(prepared.mesh_hash, fit_config)
+    cache = FieldCache(spec["cache_root"], spec["cache_max_bytes"])
+    field, cache_hit = None, False
+    if spec.get("start_field_blob"):
+        _import_field_kinds()  # a node's field may be of a kind a task module registers (e.g. a warped field)
+        field, _ = load_field(blobs.path(spec["start_field_blob"]))
+    else:
+        hit = cache.get(key)
+        if hit is not None:
+            field, cache_hit = hit[0], True
+    if channel.should_stop():
+        raise Cancelled("cancelled before the edit started; nothing was written")
+    outcome = run_edit(mesh, spec["task"], params, field=field, fit_config=fit_config, progress=channel.progress,
+                       should_stop=channel.should_stop, seed=int(spec.get("seed", 0)), prepared=prepared)
+    out = outcome.mesh
+    result_blob = blobs.put_bytes(pack_mesh(out.vertices, out.faces, out.vertex_values))  # the edit itself first
+    warnings = [str(w)[:300] for w in outcome.warnings]
+    tmp_dir = blobs.root / "tmp"
+    tmp_dir.mkdir(exist_ok=True, mode=0o700)
+    tmp = tmp_dir / f"{os.getpid()}-field.pt"
+    field_blob = result_field_blob = None
+    try:
+        save_field(tmp, outcome.field, {"fit_key": outcome.fit_key, "task": spec["task"]})
+        field_blob = blobs.put_file(tmp)
+        if field is None:  # freshly fitted: keep it for the next edit of the same mesh and settings
+            cache_tmp = tmp_dir / f"{os.getpid()}-cache.pt"
+            save_field(cache_tmp, outcome.field, {"cache_key": outcome.fit_key})
+            cache.adopt(outcome.fit_key, cache_tmp)
+        if outcome.result_field is not None:
+            save_field(tmp, outcome.result_field, {"task": spec["task"]})
+            result_field_blob = blobs.put_file(tmp)
+    except Exception as exc:  # the mesh is the edit; a field that cannot be stored only limits branching
+        warnings.append(f"field checkpoint not stored ({type(exc).__name__}): a later edit from this node refits")
+    metrics = {str(k): x for k, x in ((k, _json_ready(x)) for k, x in outcome.metrics.items())
+               if isinstance(x, float) or isinstance(x, int) and not isinstance(x, bool)}
+    seconds = {k: float(x) for k, x in outcome.seconds.items()}
+    report = dict(outcome.report) if isinstance(outcome.report, dict) else {}
+    report.setdefault("seconds", seconds)
+    report["field_cache_hit"] = cache_hit
+    return {"result_blob": result_blob, "field_blob": field_blob, "result_field_blob": result_field_blob,
+            "metrics": metrics, "report": _json_ready(report), "warnings": warnings}
+
+
+def _import_field_kinds() -> None:
+    """Import every task module so field kinds they define are registered for checkpoint loading."""
+    import importlib
+
+    from ..tasks.registry import TASK_MODULES
+
+    for module in TASK_MODULES.values():
+        try:
+            importlib.import_module(module)
+        except ImportError:  # a task not installed here cannot have made the checkpoint either
+            pass
+
+
+def _json_ready(value, depth=0):
+    """Drop what JSON/msgpack cannot carry (numpy scalars become floats, arrays are left out)."""
+    if depth > 6:
+        return None
+    if isinstance(value, dict):
+        return {str(k): _json_ready(v, depth + 1) for k, v in value.items() if _json_ready(v, depth + 1) is not None
+                or v is None}
+    if isinstance(value, (list, tuple)):
+        return [_json_ready(v, depth + 1) for v in value][:1000]
+    if isinstance(value, bool) or value is None or isinstance(value, str):
+        return value
+    if isinstance(value, int):
+        return float(value) if abs(value) >= 2**63 else int(value)
+    try:
+        x = float(value)
+        return x if math.isfinite(x) else None
+    except (TypeError, ValueError):
+        return None
+
+
+def _test_echo(spec, channel, blobs, v, f) -> dict:
+    """The echo task with test knobs (only when the server runs with test parameters enabled).
+
+    delay_s : seconds of cooperative work in steps (progress + stop checks)
+    ignore_cancel : keep working after a cancel (exercises terminate escalation)
+    crash : "exit" (exit code 3), "abort" (SIGABRT), "raise" (exception), "memory" (allocate past the limit)
+    """
+    import numpy as np
+
+    from ..errors import Cancelled
+    from ..history.blobs import pack_mesh
+
+    params = spec["params"]
+    delay = float(params.get("delay_s", 0.0))
+    steps = max(1, int(params.get("steps", 20)))
+    crash = params.get("crash")
+    for i in range(steps):
+        if delay:
+            time.sleep(delay / steps)
+        channel.progress("echo", (i + 1) / steps, {"step": i + 1})
+        if channel.should_stop() and not params.get("ignore_cancel"):
+            raise Cancelled("cancelled during echo; nothing was written")
+        if crash and i == steps // 2:
+            if crash == "exit":
+                os._exit(3)
+            if crash == "abort":
+                os.abort()
+            if crash == "raise":
+                raise RuntimeError("deliberate failure for a test")
+            if crash == "memory":
+                np.ones(int(spec["memory_bytes"]) // 8 + 1)
+    result_blob = blobs.put_bytes(pack_mesh(v, f))
+    return {"result_blob": result_blob, "field_blob": None, "result_field_blob": None,
+            "metrics": {"vertices": float(len(v))}, "report": {"task": "echo"}, "warnings": []}
