@@ -19,6 +19,12 @@ FORMAT_VERSION = 1
 FIELD_KINDS: dict[str, type] = {SplineSDF.kind: SplineSDF, MLPSDF.kind: MLPSDF, **analytic.ANALYTIC_KINDS}
 
 
+def _register_warped() -> None:
+    from ..warp.warped_field import WarpedSDF
+
+    FIELD_KINDS[WarpedSDF.kind] = WarpedSDF
+
+
 def register_field_kind(cls: type) -> type:
     """Make a field class loadable from checkpoints (usable as a class decorator)."""
     FIELD_KINDS[cls.kind] = cls
@@ -30,13 +36,21 @@ def field_to_dict(field: SDFField) -> dict:
     return {"kind": field.kind, "config": field.config(), "state": {k: v.detach().cpu() for k, v in field.state_dict().items()}}
 
 
-def field_from_dict(data: dict) -> SDFField:
+def field_from_dict(data: dict, load_state: bool = True) -> SDFField:
+    if data.get("kind") == "warped" and "warped" not in FIELD_KINDS:
+        _register_warped()
     cls = FIELD_KINDS.get(data.get("kind"))
     if cls is None:
         raise InvalidInput(f"checkpoint holds an unknown field kind {data.get('kind')!r}: update isoclay")
+    config = data["config"]
     build = getattr(cls, "from_config", None)
-    field = build(data["config"]) if build else cls(**data["config"])
-    field.load_state_dict(data["state"])
+    if "base_kind" in config:  # a field seen through a warp: rebuild the base first
+        base = field_from_dict({"kind": config["base_kind"], "config": config["base"], "state": {}}, load_state=False)
+        field = build(base, config)
+    else:
+        field = build(config) if build else cls(**config)
+    if load_state:
+        field.load_state_dict(data["state"])
     return field.eval()
 
 

@@ -1,4 +1,4 @@
-"""Fit a field to a mesh: exact distances at spline nodes near the surface, then Adam refinement.
+"""Fit a field to a mesh: exact distances at spline nodes near the surface, optional Adam refinement.
 
 Stages (each reported through ``progress``):
 1. ``distance``: exact signed distances (libigl, winding-number sign) at the grid nodes, coarse
@@ -8,7 +8,7 @@ Stages (each reported through ``progress``):
 2. the node values become spline coefficients through a smoothed second-order
    quasi-interpolant (spline.spline_from_distances): C2, surface offset ~5e-5 unit-box
    lengths, curvature free of the facet noise that exact interpolation reproduces.
-3. ``refine``: Adam on the coefficients with surface samples (f = 0, grad f = normal),
+3. ``refine`` (optional, ``steps`` > 0): Adam on the coefficients with surface samples (f = 0, grad f = normal),
    exact near-surface samples and an eikonal term (Gropp et al. 2020, "Implicit geometric
    regularization for learning shapes"), which sharpens the zero level set between nodes.
 Fields of kind "mlp" (the reference) skip 1-2 and train from samples alone.
