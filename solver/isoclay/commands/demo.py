@@ -58,12 +58,14 @@ def _task_params(task: str, edit: dict, scene: Path, quick: bool) -> dict:
 
 
 def _summary(report: dict) -> str:
-    keys = ("handle_error_max_rel", "volume_change", "stretch_mean", "bend_mean", "normal_error_deg", "moved_max_rel")
+    # field_volume_change compares the enclosed volumes of the fields before and after, which
+    # stays meaningful for open scans (the stone); volume_change compares with the input mesh
+    keys = ("handle_error_max_rel", "field_volume_change", "volume_change_rel", "stretch_mean", "bend_mean")
     parts = []
     for k in keys:
         if k in report:
             v = report[k]
-            parts.append(f"{k}={v:.2%}" if k.endswith("_rel") or k == "volume_change" else f"{k}={v:.3g}")
+            parts.append(f"{k}={v:.2%}" if k.endswith(("_rel", "_change")) else f"{k}={v:.3g}")
     return ", ".join(parts[:3])
 
 
