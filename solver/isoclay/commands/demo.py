@@ -130,8 +130,10 @@ def _render(args, ui, scene: Path, out: Path, results, pairs) -> None:
     ui.info("rendering before/after pictures with Cycles on the CPU ...")
     size = "240x180" if args.quick else "480x360"
     samples = "4" if args.quick else "16"
-    _blender(python, [str(DEMO_DIR / "render_views.py"), "--pairs", str(out / "pairs.json"), "--out", str(out / "renders"),
-                      "--size", size, "--samples", samples])
+    listing = _blender(python, [str(DEMO_DIR / "render_views.py"), "--pairs", str(out / "pairs.json"),
+                                "--out", str(out / "renders"), "--size", size, "--samples", samples])
+    # picture paths and cameras, so anyone can project geometry onto the pictures exactly
+    (out / "renders" / "renders.json").write_text(listing)
 
 
 def _blender(python: Path, argv: list[str]) -> str:
