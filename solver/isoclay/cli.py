@@ -7,6 +7,12 @@ Each subcommand lives in `isoclay/commands/<name>.py` with `add_parser(subparser
 
 from __future__ import annotations
 
+import os
+
+# Before anything imports torch: OpenMP reads its wait policy once, at start-up. Blender
+# shares the CPU, and busy-waiting threads made steps 10x slower there (FACTS.md).
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
 import argparse
 import importlib
 import pkgutil
@@ -107,7 +113,6 @@ def main(argv: list[str] | None = None) -> int:
         sys.stderr.write("isoclay: out of memory: lower --resolution or decimate the mesh\n")
         return 1
     except Exception as exc:  # internal error: one line, details only with ISOCLAY_DEBUG=1
-        import os
         import traceback
 
         if os.environ.get("ISOCLAY_DEBUG"):
