@@ -218,23 +218,31 @@ def test_bending_a_bar():
     # Sorkine & Alexa 2007, "As-rigid-as-possible surface modeling"), 10 iterations, same mesh,
     # handle vertices = the mesh vertices nearest our handle points. Distortion of both results
     # measured by the same code (energies.mesh_distortion). Bounds: handle error <= 0.5% of the
-    # bbox diagonal; volume change within 5% (a bent solid beam keeps its volume to first
-    # order, common practice, no source); no flipped faces; our largest dihedral-angle change
+    # bbox diagonal; volume change within 2% (a bent solid beam keeps its volume to first
+    # order, common practice, no source; measured -0.5%); no flipped faces; our largest dihedral-angle change
     # below ARAP's (a smooth bend, no kinks next to the handles).
-    # Stretch: the issue asks for <= 1.5 x ARAP's mean stretch. NOT MET: we measure about 6x
-    # (0.09 against 0.015). A solid bar bent with its cross-sections kept stretches its outer
-    # side by kappa * h / 2 (~3% here); surface ARAP flattens the tube's cross-section instead.
-    # The bound below (8x) only guards against regressions; see the benchmark for the figures.
+    # Stretch: the issue asks for <= 1.5 x ARAP's mean stretch. NOT MET: we measure 2.5x
+    # (0.038 against 0.015). The fair reference is the textbook pure bend of a solid bar on the
+    # same handles (Euler-Bernoulli, plane sections kept; bench.deform.beam_bend), whose outer
+    # side must lengthen by curvature x half-height: it scores 0.031 = 2.0x ARAP, because
+    # surface ARAP keeps the bar straight and kinks at the handle ends instead (its largest
+    # dihedral change is 6x ours). Bounds: ours <= 1.5x that beam's stretch, and <= 3.5x
+    # ARAP's (a regression guard; was 8x before the L-BFGS optimiser, measured 6.2x then).
     field, mesh, handles, targets = _bar_case()
     diag = measures.bbox_diagonal(mesh.vertices)
     result = deform.run(field, mesh, _config(handles, targets, keep_topology=True))
     assert result.metrics["handle_error_max"] <= 5e-3 * diag
-    assert abs(result.metrics["volume_change_rel"]) <= 0.05
+    assert abs(result.metrics["volume_change_rel"]) <= 0.02
     ours = distortion(mesh.vertices, result.mesh.vertices, mesh.faces)
     arap = distortion(mesh.vertices, _arap(mesh, handles, targets), mesh.faces)
     assert ours.flipped == 0
     assert ours.bend_max_rad < arap.bend_max_rad, (ours, arap)
-    assert ours.stretch_mean <= 8.0 * arap.stretch_mean, (ours, arap)
+    assert ours.stretch_mean <= 3.5 * arap.stretch_mean, (ours, arap)
+    from isoclay.bench.deform import beam_bend
+
+    assert np.abs(beam_bend(handles) - targets).max() <= 1e-9  # the beam meets the same handles exactly
+    beam = distortion(mesh.vertices, beam_bend(mesh.vertices), mesh.faces)
+    assert ours.stretch_mean <= 1.5 * beam.stretch_mean, (ours, beam)
     # the warp stays invertible: positive Jacobian determinant at every vertex (Behrmann et al. 2019)
     warp = result.field.warp
     with torch.no_grad():

@@ -10,6 +10,8 @@ surface carried to y = d^-1(p),
 like an elastic shell of thickness h (Koiter's shell model: membrane energy ~ h, bending
 ~ h^3, so bending weighs h^2 relative to stretch; Ciarlet 2005, "An introduction to
 differential geometry with applications to elasticity", from memory).
+The handles are constraints held by springs of fixed weight plus multipliers (augmented
+Lagrangian), minimised by L-BFGS with a line search (Nocedal & Wright 2006, ch. 7 and 17).
 Speed comes from what stays fixed: the samples p and f's gradient and Hessian there are
 computed once (f is never evaluated in the loop); the warp's Jacobian and Hessian come from
 one forward jet pass (warp.jets); y is tracked by warm-started fixed-point iterations.
@@ -77,13 +79,24 @@ class Config:
     thickness : shell thickness (unit-box lengths) behind the stiffness setting
     keep_topology : return the input's faces with moved vertices instead of a new mesh
     samples : surface samples the energies are averaged over each step
-    handle_weight : starting weight of the handle term; multiplied by handle_weight_growth
-        every 10 steps while the handles are off target (penalty continuation), up to
-        handle_weight_max
+    handle_weight : weight of the handle springs (fixed with multipliers; else the starting
+        weight, multiplied by handle_weight_growth each time the energy settles with the
+        handles still off target, up to handle_weight_max)
+    multipliers, multiplier_every, multiplier_threshold : method of multipliers on the handle
+        constraints: when the energy has settled (or multiplier_every steps after the last
+        update) with a handle further than multiplier_threshold x the tolerance from its target,
+        each spring's rest point is moved by the remaining violation
     volume_weight : weight of the local volume term
-    learning_rate, max_steps, min_steps : Adam settings and step limits; the rate decays
-        exponentially to learning_rate_decay x its start by max_steps (late steps must be small
-        for the stiff handle springs not to oscillate)
+    optimizer : "lbfgs" (default: the energy is deterministic on fixed samples, and L-BFGS with
+        a strong-Wolfe line search converges where Adam's normalised steps let the stiff
+        springs drown the elastic energy: bar bend mean stretch 0.093 -> 0.038, measured) or
+        "adam"
+    lbfgs_iterations, lbfgs_history : L-BFGS iterations per step and curvature pairs kept
+    learning_rate, learning_rate_decay : Adam only; the rate decays exponentially to
+        learning_rate_decay x its start by max_steps
+    max_steps, min_steps : step limits (one step = lbfgs_iterations L-BFGS iterations or one
+        Adam step)
+    check_every : steps between handle-error checks and progress reports
     handle_tolerance_rel : stop once every handle is this close to its target (fraction of
         the bounding-box diagonal) and the energy has settled
     settle_window, settle_rel, settle_abs : the energy has settled when it fell by less than
@@ -102,13 +115,20 @@ class Config:
     handle_weight: float = 1e4
     handle_weight_growth: float = 1.05
     handle_weight_max: float = 1e7
+    multipliers: bool = True
+    multiplier_every: int = 30
+    multiplier_threshold: float = 1.0
+    optimizer: str = "lbfgs"
+    lbfgs_iterations: int = 5
+    lbfgs_history: int = 20
+    check_every: int = 1
     volume_weight: float = 0.1
     learning_rate: float = 3e-3
     learning_rate_decay: float = 0.1
-    max_steps: int = 1000
-    min_steps: int = 30
+    max_steps: int = 150
+    min_steps: int = 10
     handle_tolerance_rel: float = 4e-3
-    settle_window: int = 50
+    settle_window: int = 10
     settle_rel: float = 5e-2
     settle_abs: float = 1e-4
     resolution: int = 160
@@ -300,22 +320,23 @@ def optimise_warp(
         elastic0 = float(parts.stretch.mean() + parts.bend.mean() * thick2 + parts.volume.mean() * config.volume_weight)
         error0 = float(handle_errors(warp.inverse(handles, tolerance=1e-6).points, targets).max())
     if error0 <= tolerance and elastic0 <= config.settle_abs:
-        # already there (a rigid edit): Adam's normalised first steps would only add noise
+        # already there (a rigid edit): the optimiser's first steps would only add noise
         return Optimised(warp, 0, True, error0, {"stretch": float(parts.stretch.mean()), "bend": float(parts.bend.mean() * thick2)}, config.handle_weight)
     weight = config.handle_weight
     state: dict = {"warm": None}
+    shift = torch.zeros_like(handles)  # scaled multipliers of the handle constraints (augmented Lagrangian)
 
     def closure():
         inv = warp.inverse(surface.points, warm=state["warm"], tolerance=2e-6)
         state["warm"] = inv.stages
-        # y = d^-1(p) is held fixed within a step (its own dependence on the warp left out of
-        # the gradient: measured, the implicit-function term changed nothing on the bar bend)
+        # y = d^-1(p) is held fixed within an evaluation (its own dependence on the warp left
+        # out of the gradient: measured, the implicit-function term changed nothing on the bar bend)
         parts = _energy_parts(warp, surface, inv.points)
         terms = {
             "stretch": parts.stretch.mean(),
             "bend": parts.bend.mean() * thick2,
             "volume": parts.volume.mean() * config.volume_weight,
-            "handle": handle_energy(warp(targets), handles) / diagonal**2,
+            "handle": handle_energy(warp(targets), handles - shift) / diagonal**2,
         }
         total = terms["stretch"] + terms["bend"] + terms["volume"] + weight * terms["handle"]
         optimizer.zero_grad(set_to_none=True)
@@ -323,39 +344,69 @@ def optimise_warp(
         state["terms"], state["total"] = terms, float(total.detach())
         return total
 
-    optimizer = torch.optim.Adam(warp.parameters(), lr=config.learning_rate)
+    def new_optimizer():
+        if config.optimizer == "lbfgs":
+            return torch.optim.LBFGS(
+                warp.parameters(), lr=1.0, max_iter=config.lbfgs_iterations, history_size=config.lbfgs_history,
+                tolerance_grad=0.0, tolerance_change=0.0, line_search_fn="strong_wolfe",
+            )
+        if config.optimizer == "adam":
+            return torch.optim.Adam(warp.parameters(), lr=config.learning_rate)
+        raise ValueError(f"unknown optimizer {config.optimizer!r}")
+
+    optimizer = new_optimizer()
     history: list[float] = []
     parts_last: dict = {}
     error = float("inf")
     converged = False
+    changed = 0  # last step at which the objective itself changed (multipliers, spring weight)
+    best = (float("inf"), None, {})  # (handle error, warp state, energy parts) of the closest iterate
     step = 0
     for step in range(1, config.max_steps + 1):
         check_stop(should_stop, "deformation")
-        for group in optimizer.param_groups:
-            group["lr"] = config.learning_rate * config.learning_rate_decay ** (step / config.max_steps)
+        if config.optimizer == "adam":
+            for group in optimizer.param_groups:
+                group["lr"] = config.learning_rate * config.learning_rate_decay ** (step / config.max_steps)
         optimizer.step(closure)
         history.append(state["total"])
-        if step % 10 == 0 or step == config.max_steps:
-            error = float(handle_errors(warp.inverse(handles, tolerance=1e-6).points, targets).max())
-            parts_last = {k: float(v.detach()) for k, v in state["terms"].items()}
-            if not all(math.isfinite(v) for v in parts_last.values()):
-                raise SolverFailure("the deformation diverged (non-finite energy); try a stiffer setting or smaller moves")
-            progress(
-                "deform",
-                step / config.max_steps,
-                {"step": step, "energy": state["total"], "handle_err": error / diagonal, **{k: v for k, v in parts_last.items() if k != "handle"}},
-            )
-            settled = len(history) > config.settle_window and (
-                history[-config.settle_window - 1] - history[-1]
-                <= config.settle_rel * abs(history[-config.settle_window - 1]) + config.settle_abs
-            )
-            if step >= config.min_steps and error <= tolerance and settled:
-                converged = True
-                break
-            if error > tolerance and step >= config.min_steps:
-                # handles still off: stiffen their springs a little (a smooth ramp keeps
-                # Adam's step-size estimates valid; sudden jumps made the energy spike)
+        if step % config.check_every and step != config.max_steps:
+            continue
+        error = float(handle_errors(warp.inverse(handles, tolerance=1e-6).points, targets).max())
+        parts_last = {k: float(v.detach()) for k, v in state["terms"].items()}
+        if not all(math.isfinite(v) for v in parts_last.values()):
+            raise SolverFailure("the deformation diverged (non-finite energy); try a stiffer setting or smaller moves")
+        progress(
+            "deform",
+            step / config.max_steps,
+            {"step": step, "energy": state["total"], "handle_err": error / diagonal, **{k: v for k, v in parts_last.items() if k != "handle"}},
+        )
+        if error < best[0]:
+            best = (error, {k: v.detach().clone() for k, v in warp.state_dict().items()}, parts_last)
+        window = config.settle_window
+        settled = step - changed > window and (
+            history[-window - 1] - history[-1] <= config.settle_rel * abs(history[-window - 1]) + config.settle_abs
+        )
+        if step >= config.min_steps and error <= tolerance and settled:
+            converged = True
+            break
+        if step >= config.min_steps and error > config.multiplier_threshold * tolerance and (settled or step - changed >= config.multiplier_every):
+            if config.multipliers:
+                # method of multipliers (Hestenes 1969; Nocedal & Wright 2006, sec. 17.3): move each
+                # spring's rest point by the constraint violation, so the handles reach their targets
+                # at a fixed spring weight (a stiffer and stiffer spring would make the problem
+                # ill-conditioned: the elastic energy stops being minimised)
+                with torch.no_grad():
+                    shift += warp(targets) - handles
+            else:
                 weight = min(weight * config.handle_weight_growth, config.handle_weight_max)
+            changed = step
+            if config.optimizer == "lbfgs":
+                optimizer = new_optimizer()  # its curvature pairs straddle the change of objective
+    if not converged and best[1] is not None and best[0] < error:
+        # out of steps: hand back the iterate whose handles came closest (the multiplier updates
+        # make the last one swing around it), not merely the last
+        warp.load_state_dict(best[1])
+        error, parts_last = best[0], best[2]
     return Optimised(warp, step, converged, error, parts_last, weight)
 
 
