@@ -23,6 +23,17 @@ def never_stop() -> bool:
     return False
 
 
+def check_param_names(task: str, params, known, example: str) -> None:
+    """Refuse parameters that are not a mapping or hold names the task does not know (one line)."""
+    from ..errors import InvalidInput
+
+    if not isinstance(params, dict):
+        raise InvalidInput(f"{task}: parameters must be a mapping such as {example}")
+    unknown = set(params) - set(known)
+    if unknown:
+        raise InvalidInput(f"{task}: unknown parameter(s) {', '.join(sorted(unknown))}; known: {', '.join(known)}")
+
+
 def check_stop(should_stop: Callable[[], bool], stage: str) -> None:
     """Raise Cancelled when the user asked to stop; called between iterations of long loops."""
     if should_stop():

@@ -9,7 +9,7 @@ from ..errors import InvalidInput
 from ..extract import bounds_of, decimate, extract_mesh
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
-from .base import TaskResult, check_stop
+from .base import TaskResult, check_param_names, check_stop
 
 
 @dataclass(frozen=True)
@@ -22,9 +22,7 @@ class Config:
 
     @classmethod
     def from_params(cls, params: dict, normalization=None) -> "Config":
-        unknown = set(params) - {"resolution", "target_faces"}
-        if unknown:
-            raise InvalidInput(f"remesh: unknown parameter(s) {', '.join(sorted(unknown))}; known: resolution, target_faces")
+        check_param_names("remesh", params, ("resolution", "target_faces"), '{"resolution": 256}')
         resolution = params.get("resolution", cls.resolution)
         target = params.get("target_faces", cls.target_faces)
         if not isinstance(resolution, int) or not 16 <= resolution <= 1024:

@@ -11,7 +11,7 @@ from ..energies.crease_sharpen import sharpen_grid
 from ..energies.curvature_flow import enclosed_volume, node_grid_of, spline_of
 from ..errors import InvalidInput
 from ..mesh.types import TriangleMesh
-from .base import TaskResult, check_stop
+from .base import TaskResult, check_param_names, check_stop
 from .smooth import _require_bool, _require_int, surface_of
 
 #: Default sharpening radius (object's longest side = 1): roundings up to about 1/20 of the
@@ -37,11 +37,7 @@ class Config:
     @classmethod
     def from_params(cls, params: dict, normalization=None) -> "Config":
         """params in the mesh's own units: amount (0..1), radius (length, optional), keep_topology, resolution."""
-        if not isinstance(params, dict):
-            raise InvalidInput("sharpen: parameters must be a mapping such as {\"amount\": 0.5}")
-        unknown = set(params) - set(cls.KNOWN)
-        if unknown:
-            raise InvalidInput(f"sharpen: unknown parameter(s) {', '.join(sorted(unknown))}; known: {', '.join(cls.KNOWN)}")
+        check_param_names("sharpen", params, cls.KNOWN, '{"amount": 0.5}')
         if "amount" not in params:
             raise InvalidInput("sharpen: amount is missing: give a value from 0 to 1 (1 = fully sharp creases)")
         a = params["amount"]

@@ -21,7 +21,7 @@ from ..energies.feature_normals import bilateral_normals
 from ..errors import InvalidInput
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
-from .base import TaskResult, check_stop, face_normals
+from .base import TaskResult, check_param_names, check_stop, face_normals
 
 #: Largest strength accepted, as a fraction of the object's longest side: beyond it the whole
 #: object is a "bump" and smoothing would melt it.
@@ -68,11 +68,7 @@ class Config:
     @classmethod
     def from_params(cls, params: dict, normalization=None) -> "Config":
         """params in the mesh's own units: strength (length), preserve_volume, keep_topology, resolution."""
-        if not isinstance(params, dict):
-            raise InvalidInput("smooth: parameters must be a mapping such as {\"strength\": 0.01}")
-        unknown = set(params) - set(cls.KNOWN)
-        if unknown:
-            raise InvalidInput(f"smooth: unknown parameter(s) {', '.join(sorted(unknown))}; known: {', '.join(cls.KNOWN)}")
+        check_param_names("smooth", params, cls.KNOWN, '{"strength": 0.01}')
         if "strength" not in params:
             raise InvalidInput("smooth: strength is missing: give the size of the bumps to remove, in the mesh's units")
         s = params["strength"]
