@@ -20,6 +20,15 @@ def add_input_output(parser, out_help: str = "result mesh (.ply, .obj, .stl, .gl
     parser.add_argument("--report", help="write a JSON report (timings, sizes, quality figures)")
 
 
+def add_surface_options(parser, what: str) -> None:
+    """--keep-topology and --resolution, shared by the field edits that output a surface."""
+    parser.add_argument("--keep-topology", action="store_true",
+                        help=f"move the input's own vertices onto the {what} surface (keeps UVs); "
+                             "per-vertex 'moved' distance goes into the PLY")
+    parser.add_argument("--resolution", type=int, default=256,
+                        help="marching-cubes cells along the longest side (default 256)")
+
+
 def add_fit_options(parser) -> None:
     group = parser.add_argument_group("field fit")
     group.add_argument("--field-resolution", type=int, default=FitConfig.resolution,

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ._common import add_edit_options, add_input_output, check_output_path, fit_config_from, load_input, run_task, write_outputs
+from ._common import add_edit_options, add_input_output, add_surface_options, check_output_path, fit_config_from, load_input, run_task, write_outputs
 
 
 def add_parser(sub):
@@ -14,9 +14,7 @@ def add_parser(sub):
                    help="0..1: fraction of the way from the rounded to the fully sharp edge")
     p.add_argument("--radius", type=float, default=None,
                    help="largest rounding to sharpen, in the mesh's units (default: 1/20 of the object's longest side)")
-    p.add_argument("--keep-topology", action="store_true",
-                   help="move the input's own vertices onto the sharpened surface (keeps UVs)")
-    p.add_argument("--resolution", type=int, default=256, help="marching-cubes cells along the longest side (default 256)")
+    add_surface_options(p, "sharpened")
     add_edit_options(p)
     return p
 

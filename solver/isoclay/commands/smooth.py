@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ._common import add_edit_options, add_input_output, check_output_path, fit_config_from, load_input, run_task, write_outputs
+from ._common import add_edit_options, add_input_output, add_surface_options, check_output_path, fit_config_from, load_input, run_task, write_outputs
 
 
 def add_parser(sub):
@@ -14,10 +14,7 @@ def add_parser(sub):
                    help="size of the bumps to remove, in the mesh's units (e.g. 2 for 2 mm bumps on a model in mm)")
     p.add_argument("--no-preserve-volume", dest="preserve_volume", action="store_false",
                    help="let the flow shrink the object as plain curvature flow does")
-    p.add_argument("--keep-topology", action="store_true",
-                   help="move the input's own vertices onto the smoothed surface (keeps UVs); "
-                        "per-vertex 'moved' distance goes into the PLY")
-    p.add_argument("--resolution", type=int, default=256, help="marching-cubes cells along the longest side (default 256)")
+    add_surface_options(p, "smoothed")
     add_edit_options(p)
     return p
 
