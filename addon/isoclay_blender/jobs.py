@@ -175,11 +175,16 @@ class EditJob:
         except Exception as exc:  # every failure becomes a one-line report for the artist
             self._update(state=FAILED, error=explain(exc, mod))
         finally:
-            if client is not None:
-                try:
-                    client.close()
-                except Exception:
-                    pass
+            _close_quietly(client)
+
+
+def _close_quietly(client) -> None:
+    """Close a client after a call; a failure to close must not hide the call's own outcome."""
+    if client is not None:
+        try:
+            client.close()
+        except Exception:
+            pass
 
 
 class Request:
@@ -207,11 +212,7 @@ class Request:
         except Exception as exc:
             self.error = explain(exc, self.client_module)
         finally:
-            if client is not None:
-                try:
-                    client.close()
-                except Exception:
-                    pass
+            _close_quietly(client)
             self.done = True
 
     def poll(self) -> bool:

@@ -23,6 +23,13 @@ def never_stop() -> bool:
     return False
 
 
+def is_finite_number(value) -> bool:
+    """True for a finite int or float parameter (bools, strings, NaN and infinities are not)."""
+    import math
+
+    return not isinstance(value, bool) and isinstance(value, (int, float)) and math.isfinite(value)
+
+
 def check_param_names(task: str, params, known, example: str) -> None:
     """Refuse parameters that are not a mapping or hold names the task does not know (one line)."""
     from ..errors import InvalidInput

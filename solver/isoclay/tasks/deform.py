@@ -42,7 +42,7 @@ from ..geometry.sampling import sample_level_set
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
 from ..warp import ResidualWarp, WarpConfig, WarpedSDF, symmetric_from_pairs
-from .base import TaskResult, check_stop, never_stop, no_progress
+from .base import TaskResult, check_stop, is_finite_number, never_stop, no_progress
 from .handles import SURFACE_TOLERANCE_REL, parse_handles, check_on_surface
 
 #: Stiffness names an artist picks from, and the shell thickness behind each, as a fraction
@@ -66,7 +66,7 @@ def stiffness_thickness(value) -> float:
             raise InvalidInput(
                 f"unknown stiffness {value!r}: use one of {', '.join(STIFFNESS)} or a number from 0.001 to 1"
             ) from None
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or not 0.001 <= value <= 1.0:
+    if not is_finite_number(value) or not 0.001 <= value <= 1.0:
         raise InvalidInput(f"stiffness {value!r} is out of range: use one of {', '.join(STIFFNESS)} or a number from 0.001 to 1")
     return float(value)
 

@@ -3,7 +3,6 @@ flat sides make (energies.crease_sharpen: bounded, no backward flow)."""
 
 from __future__ import annotations
 
-import math
 import time
 from dataclasses import dataclass
 
@@ -11,7 +10,7 @@ from ..energies.crease_sharpen import sharpen_grid
 from ..energies.curvature_flow import enclosed_volume, node_grid_of, spline_of
 from ..errors import InvalidInput
 from ..mesh.types import TriangleMesh
-from .base import TaskResult, check_param_names, check_stop
+from .base import TaskResult, check_param_names, check_stop, is_finite_number
 from .smooth import _require_bool, _require_int, surface_of
 
 #: Default sharpening radius (object's longest side = 1): roundings up to about 1/20 of the
@@ -41,13 +40,13 @@ class Config:
         if "amount" not in params:
             raise InvalidInput("sharpen: amount is missing: give a value from 0 to 1 (1 = fully sharp creases)")
         a = params["amount"]
-        if isinstance(a, bool) or not isinstance(a, (int, float)) or not math.isfinite(a) or not 0 < a <= 1:
+        if not is_finite_number(a) or not 0 < a <= 1:
             raise InvalidInput(f"sharpen: amount {a!r} out of range: use a value above 0 and at most 1 (1 = fully sharp creases)")
         to_unit = normalization.length_to_unit if normalization is not None else float
         radius = DEFAULT_RADIUS
         if "radius" in params:
             r = params["radius"]
-            if isinstance(r, bool) or not isinstance(r, (int, float)) or not math.isfinite(r) or r <= 0:
+            if not is_finite_number(r) or r <= 0:
                 raise InvalidInput(f"sharpen: radius {r!r} must be a positive length in the mesh's units (the rounding to undo)")
             radius = to_unit(r)
             if radius > MAX_RADIUS:

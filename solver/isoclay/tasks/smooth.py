@@ -10,7 +10,6 @@ is averaged away; a crease has two consistent families of normals and stays.
 
 from __future__ import annotations
 
-import math
 import time
 from dataclasses import dataclass
 
@@ -21,7 +20,7 @@ from ..energies.feature_normals import bilateral_normals
 from ..errors import InvalidInput
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
-from .base import TaskResult, check_param_names, check_stop, face_normals
+from .base import TaskResult, check_param_names, check_stop, face_normals, is_finite_number
 
 #: Largest strength accepted, as a fraction of the object's longest side: beyond it the whole
 #: object is a "bump" and smoothing would melt it.
@@ -72,7 +71,7 @@ class Config:
         if "strength" not in params:
             raise InvalidInput("smooth: strength is missing: give the size of the bumps to remove, in the mesh's units")
         s = params["strength"]
-        if isinstance(s, bool) or not isinstance(s, (int, float)) or not math.isfinite(s) or s <= 0:
+        if not is_finite_number(s) or s <= 0:
             raise InvalidInput(f"smooth: strength {s!r} must be a positive length in the mesh's units (size of the bumps to remove)")
         unit = normalization.length_to_unit(s) if normalization is not None else float(s)
         if unit > MAX_STRENGTH_REL:
