@@ -1,11 +1,14 @@
 """Level-set meshing: marching cubes (Lewiner et al. 2003, scikit-image) on a grid evaluated only near the surface.
 
-The grid is refined coarse to fine: a cell is split only when all its corners lie
-within 1.2 cell diagonals of the surface (a distance field changes by at most one unit per
-unit of length, so farther cells cannot hold surface; the 1.2 allows slightly
-non-distance fields). Nodes never evaluated inherit values trilinearly from the coarser
-level, whose sign is right there. The finest grid's outer layer is forced outside, so the
-result is always closed.
+The grid is refined coarse to fine. Coarse lattices split a cell only when all its corners
+lie within 1.2 cell diagonals of the surface (a distance field changes by at most one unit
+per unit of length, so farther cells cannot hold surface; the 1.2 allows slightly
+non-distance fields). The two finest lattices evaluate only nodes whose estimate from the
+coarser level is close to zero, and a last pass evaluates the corners of every cell the
+surface still passes through on estimates, until there is none, so marching cubes sees
+exact values wherever it makes triangles. Nodes never evaluated inherit values
+trilinearly from the coarser level, whose sign is right there. The finest grid's outer
+layer is forced outside, so the result is always closed.
 """
 
 from __future__ import annotations
@@ -23,6 +26,12 @@ from ..tasks.base import check_stop, never_stop, no_progress
 COARSEST_STEP = 16
 #: A corner within this many cell diagonals of the surface marks its cell for refinement.
 BAND = 1.2
+#: Lattices coarser than this step (in fine cells) are refined by the BAND rule.
+CAREFUL_STEP = 4
+#: Finer lattices evaluate a node when its estimate is within (a * step + b) fine cells of zero
+#: (measured on the 256^3 anvil block: 5.2% of the nodes evaluated, mesh identical to dense).
+NODE_BAND = (1.0, 0.2)
+_CORNERS = np.array([[i, j, k] for i in (0, 1) for j in (0, 1) for k in (0, 1)])
 
 
 def _upsample2(a: np.ndarray) -> np.ndarray:
@@ -63,36 +72,93 @@ def dense_grid_values(field, lo, cell: float, shape) -> np.ndarray:
     return field_values(field, pts).reshape(shape)
 
 
+def _unresolved_cells(values: np.ndarray, exact: np.ndarray) -> np.ndarray:
+    """Flat node indices of the lower corners of cells whose corners change sign but were not all evaluated.
+
+    Counts per cell by separable box sums over the 2x2x2 corners: the low nibble counts
+    positive corners, the high nibble corners holding only an estimate.
+    """
+    code = (values > 0).view(np.uint8) + (~exact).view(np.uint8) * np.uint8(16)
+    code = code[1:] + code[:-1]
+    code = code[:, 1:] + code[:, :-1]
+    code = code[:, :, 1:] + code[:, :, :-1]
+    positive = code & np.uint8(15)
+    cells = np.nonzero((positive > 0) & (positive < 8) & (code >= 16))
+    return np.ravel_multi_index(cells, values.shape)
+
+
+def _unresolved_cells_touching(nodes: np.ndarray, values: np.ndarray, exact: np.ndarray, corners: np.ndarray) -> np.ndarray:
+    """_unresolved_cells restricted to the cells with a corner among these flat node indices."""
+    ijk = np.stack(np.unravel_index(nodes, values.shape), axis=1)[:, None, :] - _CORNERS[None]
+    ijk = ijk.reshape(-1, 3)
+    ijk = ijk[((ijk >= 0) & (ijk < np.array(values.shape) - 1)).all(axis=1)]
+    cells = np.unique(np.ravel_multi_index(ijk.T, values.shape))
+    at = cells[:, None] + corners[None, :]
+    positive = (values.reshape(-1)[at] > 0).sum(axis=1)
+    settled = exact.reshape(-1)[at].all(axis=1)
+    return cells[(positive > 0) & (positive < 8) & ~settled]
+
+
+def _evaluate_at(flat: np.ndarray, lattice: np.ndarray, exact: np.ndarray, evaluate) -> None:
+    """Evaluate the lattice nodes with these flat indices in place and mark them exact."""
+    if len(flat):
+        lattice.reshape(-1)[flat] = evaluate(np.stack(np.unravel_index(flat, lattice.shape), axis=1))
+        exact.reshape(-1)[flat] = True
+
+
 def narrow_band_values(field, lo, cell: float, cells_per_axis, progress=no_progress, should_stop=never_stop):
     """Values on a fine node lattice, evaluated only near the surface.
 
     cells_per_axis : (3,) multiples of COARSEST_STEP. Returns (values (nx+1, ny+1, nz+1)
     float32, number of field evaluations).
+
+    Three stages. Down to lattice step CAREFUL_STEP, cells are split when all their corners
+    lie within BAND diagonals of the surface, which cannot miss surface of a distance field.
+    Below that, nodes are evaluated where the estimate from the coarser level lies within
+    NODE_BAND of zero. Last, every cell whose corners change sign but hold an estimate gets
+    its corners evaluated, until none is left, so the marching cubes see exact values
+    wherever the surface passes and follow it wherever it continues.
     """
     lo = np.asarray(lo, dtype=np.float64)
     step = COARSEST_STEP
     shape = tuple(int(c) // step + 1 for c in cells_per_axis)
-    axes = [lo[d] + cell * step * np.arange(shape[d]) for d in range(3)]
-    pts = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, 3)
-    lattice = field_values(field, pts).reshape(shape)
-    evaluations = lattice.size
+    evaluations = 0
+
+    def evaluate(nodes: np.ndarray) -> np.ndarray:
+        nonlocal evaluations
+        evaluations += len(nodes)
+        return field_values(field, lo + cell * step * nodes)
+
+    lattice = evaluate(np.indices(shape).reshape(3, -1).T).reshape(shape)
+    exact = np.ones(shape, dtype=bool)
     active = np.ones(tuple(s - 1 for s in shape), dtype=bool)
     levels = int(np.log2(step))
     for level in range(levels):
         check_stop(should_stop, "extract")
-        active &= _cells_near_surface(lattice, np.sqrt(3) * cell * step)
+        careful = step > CAREFUL_STEP
+        if careful:
+            active &= _cells_near_surface(lattice, np.sqrt(3) * cell * step)
         step //= 2
         lattice = _upsample2(lattice)
-        children = np.repeat(np.repeat(np.repeat(active, 2, axis=0), 2, axis=1), 2, axis=2)
-        todo = _nodes_of_cells(children)
-        todo[::2, ::2, ::2] = False  # already evaluated at the coarser level
-        idx = np.nonzero(todo)
-        if len(idx[0]):
-            pts = lo + cell * step * np.stack(idx, axis=1)
-            lattice[idx] = field_values(field, pts)
-            evaluations += len(idx[0])
-        active = children
-        progress("extract", 0.9 * (level + 1) / levels, {"grid": int(max(lattice.shape)) - 1, "evaluated": evaluations})
+        refined = np.zeros(lattice.shape, dtype=bool)
+        refined[::2, ::2, ::2] = exact
+        exact = refined
+        if careful:
+            active = np.repeat(np.repeat(np.repeat(active, 2, axis=0), 2, axis=1), 2, axis=2)
+            todo = _nodes_of_cells(active) & ~exact
+        else:
+            todo = (np.abs(lattice) <= (NODE_BAND[0] * step + NODE_BAND[1]) * cell) & ~exact
+        _evaluate_at(np.flatnonzero(todo), lattice, exact, evaluate)
+        progress("extract", 0.8 * (level + 1) / levels, {"grid": int(max(lattice.shape)) - 1, "evaluated": evaluations})
+    corners = np.ravel_multi_index(_CORNERS.T, lattice.shape)
+    cells = _unresolved_cells(lattice, exact)
+    while len(cells):  # follow the surface where it leaves the evaluated shell
+        check_stop(should_stop, "extract")
+        nodes = np.unique((cells[:, None] + corners[None, :]).reshape(-1))
+        nodes = nodes[~exact.reshape(-1)[nodes]]
+        _evaluate_at(nodes, lattice, exact, evaluate)
+        cells = _unresolved_cells_touching(nodes, lattice, exact, corners)
+    progress("extract", 0.9, {"grid": int(max(lattice.shape)) - 1, "evaluated": evaluations})
     return lattice, evaluations
 
 
