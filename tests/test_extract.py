@@ -6,7 +6,7 @@ import torch
 import trimesh
 
 from isoclay.extract import decimate, extract_mesh
-from isoclay.extract.marching import dense_grid_values
+from isoclay.extract.marching import OFF_ZERO, dense_grid_values
 from isoclay.field.analytic import SphereSDF, TorusSDF
 from isoclay.mesh import make_mesh, measures
 
@@ -30,6 +30,14 @@ def test_sphere_area_and_volume():
     assert stats["evaluations"] < 0.1 * stats["dense_nodes"]
 
 
+def _off_zero(values, cell):
+    """extract_mesh keeps node values OFF_ZERO cells away from zero; the dense reference does too."""
+    tiny = np.float32(OFF_ZERO * cell)
+    near = np.abs(values) < tiny
+    values[near] = np.where(values[near] < 0, -tiny, tiny)
+    return values
+
+
 def test_torus_matches_dense_extraction():
     # The narrow band must give the same mesh as evaluating every node (scikit-image
     # marching_cubes on the dense grid is the reference).
@@ -43,7 +51,7 @@ def test_torus_matches_dense_extraction():
     cells = np.ceil((hi - lo) / cell + 2).astype(int)
     cells = ((cells + 15) // 16) * 16
     origin = (lo + hi) / 2 - cells * cell / 2
-    dense = dense_grid_values(field, origin, cell, tuple(cells + 1))
+    dense = _off_zero(dense_grid_values(field, origin, cell, tuple(cells + 1)), cell)
     v, f, _, _ = marching_cubes(dense, 0.0, spacing=(cell,) * 3)
     assert len(f) == m.n_faces
     np.testing.assert_allclose(np.sort((v + origin).sum(1)), np.sort(m.vertices.sum(1)), atol=1e-6)
@@ -79,7 +87,7 @@ def _dense_reference(field, lo, hi, resolution):
     cells = np.ceil((hi - lo) / cell + 2).astype(int)
     cells = ((cells + 15) // 16) * 16
     origin = (lo + hi) / 2 - cells * cell / 2
-    dense = dense_grid_values(field, origin, cell, tuple(cells + 1))
+    dense = _off_zero(dense_grid_values(field, origin, cell, tuple(cells + 1)), cell)
     v, f, _, _ = marching_cubes(dense, 0.0, spacing=(cell,) * 3, allow_degenerate=False)
     return v + origin, f
 
@@ -95,6 +103,28 @@ def test_band_follows_surface_finer_than_the_coarse_lattices():
     assert len(f) == m.n_faces
     np.testing.assert_allclose(np.sort(v.sum(1)), np.sort(m.vertices.sum(1)), atol=1e-6)
     assert m.vertices[:, 0].max() > 0.43  # the needle's tip made it into the mesh
+
+
+class _Diamond(torch.nn.Module):
+    """|x| + |y| + |z| - 0.25: zero exactly at many grid nodes (not a distance, but a field)."""
+
+    def forward(self, p):
+        return p.abs().sum(dim=1) - 0.25
+
+
+def test_values_at_zero_give_no_degenerate_triangles():
+    # Exact zeros on the grid make marching cubes stack vertices on one spot (measured:
+    # zero-area triangles here without extract_mesh's off-zero rule). The mesh must stay
+    # watertight and outward with no zero-area triangle, its vertices on the surface
+    # (|x| + |y| + |z| = 0.25, the field's own closed form).
+    m = extract_mesh(_Diamond(), np.full(3, -0.25), np.full(3, 0.25), 40)
+    assert measures.is_watertight(m.faces)
+    assert not measures.has_degenerate_faces(m.vertices, m.faces)
+    a = m.vertices[m.faces]
+    assert np.linalg.norm(np.cross(a[:, 1] - a[:, 0], a[:, 2] - a[:, 0]), axis=1).min() > 0
+    np.testing.assert_allclose(np.abs(m.vertices).sum(1), 0.25, atol=2e-3 * 0.5 / 40)
+    # octahedron volume 4/3 a^3 for |x|+|y|+|z| <= a (common practice, no source)
+    np.testing.assert_allclose(measures.signed_volume(m.vertices, m.faces), 4 / 3 * 0.25**3, rtol=0.01)
 
 
 def test_empty_box_is_a_clear_failure():

@@ -30,6 +30,14 @@ def signed_volume(vertices: np.ndarray, faces: np.ndarray) -> float:
     return float(np.einsum("ij,ij->i", a, np.cross(b, c)).sum() / 6.0)
 
 
+def has_degenerate_faces(vertices: np.ndarray, faces: np.ndarray) -> bool:
+    """True when some triangle repeats a vertex or has two corners at the same position."""
+    if ((faces[:, 0] == faces[:, 1]) | (faces[:, 1] == faces[:, 2]) | (faces[:, 2] == faces[:, 0])).any():
+        return True
+    a, b, c = (vertices[faces[:, i]] for i in range(3))
+    return bool(((a == b).all(1) | (b == c).all(1) | (c == a).all(1)).any())
+
+
 def edge_face_counts(faces: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Undirected edges (k, 2) sorted, how many faces use each (k,), and directed-use balance (k,).
 
