@@ -12,7 +12,7 @@ from isoclay.field.analytic import SphereSDF
 from isoclay.mesh import Normalization, measures
 from isoclay.mesh.types import TriangleMesh
 from isoclay.tasks import smooth
-from isoclay.tasks.base import never_stop, no_progress
+from isoclay.tasks.base import face_normals, never_stop, no_progress
 
 torch.set_num_threads(1)
 
@@ -32,6 +32,7 @@ MM = Normalization((0.0, 0.0, 0.0), 1.0 / 40.0)  # an object 40 mm long
         ({"strength": 20.0}, "too large"),
         ({"strength": 1.0, "preserve_volume": "yes"}, "true or false"),
         ({"strength": 1.0, "keep_topology": 1}, "true or false"),
+        ({"strength": 1.0, "crisp_creases": "no"}, "true or false"),
         ({"strength": 1.0, "resolution": 4}, "out of range"),
         ({"strength": 1.0, "sigma": 2}, "unknown parameter"),
     ],
@@ -90,6 +91,26 @@ def test_noisy_solid_beats_trimesh_filters_on_feature_normals(noisy_block):
     assert measures.is_watertight(result.mesh.faces)
     # and the smoothing did something: flat-region normals far better than the noisy input's
     assert ours["normal_error_flat_deg"] < 0.25 * bench.score(noisy, clean, creases)["normal_error_flat_deg"]
+
+
+def test_crisp_creases_put_back_the_sharpness_the_grid_rounds_off(noisy_block):
+    # Reference: the exact clean block (a polytope: its face normals are exact). With crease
+    # restoration the feature-region normal error must drop well below the soft result's
+    # (measured here: 12.2 -> 5.9 deg), the flat region must not get worse, and the mesh must
+    # stay closed with no triangle turned over.
+    clean, creases, noisy, field = noisy_block
+    soft = smooth.run(field, noisy, smooth.Config(strength=0.05, resolution=128, crisp_creases=False), no_progress, never_stop)
+    crisp = smooth.run(field, noisy, smooth.Config(strength=0.05, resolution=128), no_progress, never_stop)
+    s, c = bench.score(soft.mesh, clean, creases), bench.score(crisp.mesh, clean, creases)
+    assert c["normal_error_feature_deg"] < 0.7 * s["normal_error_feature_deg"], (s, c)
+    assert c["normal_error_flat_deg"] < s["normal_error_flat_deg"] + 0.3
+    assert c["chamfer_rel"] <= s["chamfer_rel"] * 1.02
+    assert measures.is_watertight(crisp.mesh.faces)
+    assert crisp.metrics["crease_faces"] > 0 and "crease_faces" not in soft.metrics
+    before = face_normals(soft.mesh.vertices, soft.mesh.faces)
+    after = face_normals(crisp.mesh.vertices, crisp.mesh.faces)
+    assert ((before * after).sum(1) > 0).all()
+    assert abs(crisp.metrics["volume_change"]) < 5e-3
 
 
 def test_keep_topology_moves_vertices_onto_the_new_surface(noisy_block):

@@ -245,7 +245,8 @@ class ISOCLAY_OT_smooth_shape(_EditOperator, bpy.types.Operator):
     def task_params(self, context, obj):
         settings = context.scene.isoclay
         return {"strength": float(settings.smooth_strength), "preserve_volume": bool(settings.preserve_volume),
-                "keep_topology": bool(settings.keep_topology), "resolution": int(settings.surface_resolution)}
+                "keep_topology": bool(settings.keep_topology), "resolution": int(settings.surface_resolution),
+                "crisp_creases": bool(settings.crisp_creases)}
 
 
 class ISOCLAY_OT_sharpen_shape(_EditOperator, bpy.types.Operator):

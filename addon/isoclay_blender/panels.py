@@ -73,6 +73,7 @@ class ISOCLAY_PT_edit(_SidebarPanel, bpy.types.Panel):
         box.label(text="Smooth", icon='MOD_SMOOTH')
         box.prop(settings, "smooth_strength")
         box.prop(settings, "preserve_volume")
+        box.prop(settings, "crisp_creases")
         box.operator("isoclay.smooth_shape", icon='PLAY')
 
         box = layout.box()

@@ -54,6 +54,10 @@ class IsoclaySceneSettings(bpy.types.PropertyGroup):
         default=0.01, min=1e-6, soft_max=1.0, subtype='DISTANCE', unit='LENGTH', precision=4)
     preserve_volume: BoolProperty(name="Keep volume", description="Stop smoothing from shrinking the shape",
                                   default=True)
+    crisp_creases: BoolProperty(
+        name="Crisp creases",
+        description="Give a rebuilt surface its sharp creases back after smoothing (curved parts are not touched)",
+        default=True)
     sharpen_amount: FloatProperty(name="Amount", description="How strongly creases and corners are crisped",
                                   default=0.5, min=0.0, soft_max=2.0)
     field_resolution: IntProperty(

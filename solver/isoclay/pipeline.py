@@ -25,7 +25,7 @@ from .tasks.registry import task_module
 #: Metrics that tasks report as unit-box lengths; the report converts them to the mesh's units
 #: and adds a twin ending in "_rel" (fraction of the bounding-box diagonal). Any metric whose
 #: name ends in "_length" is treated the same way.
-LENGTH_METRICS = {"handle_error_max", "handle_error_mean", "moved_max", "moved_mean", "gap_max", "gap_mean"}
+LENGTH_METRICS = {"handle_error_max", "handle_error_mean", "moved_max", "moved_mean", "gap_max", "gap_mean", "crease_largest_move"}
 #: Per-vertex values that tasks give in unit-box lengths; written in the mesh's units.
 LENGTH_VERTEX_VALUES = {"moved"}
 

@@ -14,6 +14,9 @@ def add_parser(sub):
                    help="size of the bumps to remove, in the mesh's units (e.g. 2 for 2 mm bumps on a model in mm)")
     p.add_argument("--no-preserve-volume", dest="preserve_volume", action="store_false",
                    help="let the flow shrink the object as plain curvature flow does")
+    p.add_argument("--soft-creases", dest="crisp_creases", action="store_false",
+                   help="leave creases as the field's grid rounds them (by default a remeshed result gets its "
+                        "creases put back sharp; smoothly curved parts are never touched)")
     add_surface_options(p, "smoothed")
     add_edit_options(p)
     return p
@@ -23,7 +26,7 @@ def run(args, ui) -> int:
     out = check_output_path(args.out)
     fit_config_from(args)  # refuse bad fit options before reading the mesh
     params = {"strength": args.strength, "preserve_volume": args.preserve_volume,
-              "keep_topology": args.keep_topology, "resolution": args.resolution}
+              "keep_topology": args.keep_topology, "resolution": args.resolution, "crisp_creases": args.crisp_creases}
     prepared = load_input(args.mesh, ui)
     outcome = run_task(args, ui, "smooth", params, prepared)
     write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology)

@@ -51,6 +51,8 @@ class Config:
     preserve_volume : keep the enclosed volume (default) or let the flow shrink convex parts
     keep_topology : move the input's own vertices onto the new surface instead of remeshing
     resolution : marching-cubes cells along the longest side for the remeshed output
+    crisp_creases : after remeshing, put back the sharpness the field's grid rounds off creases
+        (extract.creases); smoothly curved parts are left alone
     rounds : filter-then-flow rounds
     range_sigma : normal-similarity width of the bilateral filter (smaller keeps more creases)
     """
@@ -59,14 +61,15 @@ class Config:
     preserve_volume: bool = True
     keep_topology: bool = False
     resolution: int = 256
+    crisp_creases: bool = True
     rounds: int = 2
     range_sigma: float = 0.15
 
-    KNOWN = ("strength", "preserve_volume", "keep_topology", "resolution")
+    KNOWN = ("strength", "preserve_volume", "keep_topology", "resolution", "crisp_creases")
 
     @classmethod
     def from_params(cls, params: dict, normalization=None) -> "Config":
-        """params in the mesh's own units: strength (length), preserve_volume, keep_topology, resolution."""
+        """params in the mesh's own units: strength (length), preserve_volume, keep_topology, resolution, crisp_creases."""
         check_param_names("smooth", params, cls.KNOWN, '{"strength": 0.01}')
         if "strength" not in params:
             raise InvalidInput("smooth: strength is missing: give the size of the bumps to remove, in the mesh's units")
@@ -85,6 +88,7 @@ class Config:
             preserve_volume=_require_bool("smooth", "preserve_volume", params.get("preserve_volume", True)),
             keep_topology=_require_bool("smooth", "keep_topology", params.get("keep_topology", False)),
             resolution=_require_int("smooth", "resolution", params.get("resolution", cls.resolution), 16, 1024),
+            crisp_creases=_require_bool("smooth", "crisp_creases", params.get("crisp_creases", True)),
         )
 
 
@@ -116,6 +120,11 @@ def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> Tas
     new_field = spline_of(grid)
     seconds = {"smooth": time.perf_counter() - t0}
     out, more = surface_of(new_field, mesh, config.keep_topology, config.resolution, progress, should_stop, seconds, "smooth")
+    if config.crisp_creases and not config.keep_topology:
+        out, creases = crisp(out, grid.cell, progress, should_stop, seconds)
+        more.update(creases)
+        before = abs(measures.signed_volume(mesh.vertices, mesh.faces))
+        more["volume_change"] = measures.signed_volume(out.vertices, out.faces) / max(before, 1e-300) - 1.0
     metrics = {
         "field_volume_change": enclosed_volume(grid) / max(volume_before, 1e-300) - 1.0,
         "flow_steps": float(figures["steps"]),
@@ -125,6 +134,25 @@ def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> Tas
         **more,
     }
     return TaskResult(out, new_field, metrics, seconds)
+
+
+#: Patch radius of the crease restoration, in field grid cells: the rounding it undoes is one
+#: to two cells wide (measured on the bench's chamfered block: feature-region normal error
+#: 9.7 -> 4.6 deg at 3.5 cells, 5.0 at 3, 5.9 at 2; smooth tori untouched at all three).
+CREASE_PATCH_CELLS = 3.5
+
+
+def crisp(mesh: TriangleMesh, cell: float, progress, should_stop, seconds: dict) -> tuple[TriangleMesh, dict]:
+    """Restore creases on a remeshed result; returns the mesh and its figures (unit box)."""
+    from ..extract.creases import restore_creases
+
+    t = time.perf_counter()
+    progress("creases", 0.0, {})
+    out, report = restore_creases(mesh, CREASE_PATCH_CELLS * cell, should_stop)
+    progress("creases", 1.0, {"faces": report.faces_guided})
+    seconds["creases"] = time.perf_counter() - t
+    seconds["total"] = sum(v for k, v in seconds.items() if k != "total")
+    return out, {"crease_faces": float(report.faces_guided), "crease_largest_move": report.largest_move}
 
 
 def surface_of(new_field, mesh: TriangleMesh, keep_topology: bool, resolution: int, progress, should_stop, seconds: dict, task: str):
