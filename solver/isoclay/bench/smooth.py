@@ -280,6 +280,7 @@ def isoclay_smooth(noisy: TriangleMesh, strengths, fit_resolution: int = 128, ex
             "fit": fit_seconds,
             "smooth": result.seconds.get("smooth", 0.0),
             "extract": result.seconds.get("extract", 0.0),
+            "creases": result.seconds.get("creases", 0.0),
             "total": fit_seconds + time.perf_counter() - t1,
             "flow_steps": result.metrics["flow_steps"],
             "filter_passes": result.metrics["filter_passes"],
