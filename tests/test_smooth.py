@@ -99,8 +99,8 @@ def test_crisp_creases_put_back_the_sharpness_the_grid_rounds_off(noisy_block):
     # (measured here: 12.2 -> 5.9 deg), the flat region must not get worse, and the mesh must
     # stay closed with no triangle turned over.
     clean, creases, noisy, field = noisy_block
-    soft = smooth.run(field, noisy, smooth.Config(strength=0.05, resolution=128, crisp_creases=False), no_progress, never_stop)
-    crisp = smooth.run(field, noisy, smooth.Config(strength=0.05, resolution=128), no_progress, never_stop)
+    soft = smooth.run(field, noisy, smooth.Config(strength=0.05, resolution=128), no_progress, never_stop)
+    crisp = smooth.run(field, noisy, smooth.Config(strength=0.05, resolution=128, crisp_creases=True), no_progress, never_stop)
     s, c = bench.score(soft.mesh, clean, creases), bench.score(crisp.mesh, clean, creases)
     assert c["normal_error_feature_deg"] < 0.7 * s["normal_error_feature_deg"], (s, c)
     assert c["normal_error_flat_deg"] < s["normal_error_flat_deg"] + 0.3
@@ -173,6 +173,26 @@ def test_cli_smooth_writes_a_mesh_and_a_report(tmp_path):
     assert r["task"] == "smooth" and r["watertight"] is True
     assert abs(r["volume_change"]) < 0.02
     assert read_mesh(out).n_faces == r["faces"]
+    assert "crease_faces" not in r  # crease restoration is off unless asked for
+
+
+def test_cli_crisp_creases_reaches_the_task_and_leaves_a_sphere_alone(tmp_path):
+    # A sphere has no crease (common practice): --crisp-creases must run and move nothing,
+    # and its figures land in the report in the mesh's units.
+    import json
+
+    from isoclay.cli import main
+    from isoclay.mesh import write_mesh
+
+    src = tmp_path / "ball.ply"
+    sphere = _sphere_mesh(0.4, 3)
+    write_mesh(src, TriangleMesh(sphere.vertices * 50.0, sphere.faces))
+    report = tmp_path / "r.json"
+    code = main(["--quiet", "smooth", str(src), "--strength", "2", "--crisp-creases", "--out", str(tmp_path / "o.ply"),
+                 "--report", str(report), "--field-resolution", "32", "--fit-steps", "0", "--resolution", "48"])
+    assert code == 0
+    r = json.loads(report.read_text())
+    assert r["crease_faces"] == 0 and r["crease_largest_move"] == 0.0
 
 
 def test_cli_smooth_bad_strength_is_one_line_exit_2(tmp_path, capsys):

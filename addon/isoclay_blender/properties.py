@@ -56,8 +56,9 @@ class IsoclaySceneSettings(bpy.types.PropertyGroup):
                                   default=True)
     crisp_creases: BoolProperty(
         name="Crisp creases",
-        description="Give a rebuilt surface its sharp creases back after smoothing (curved parts are not touched)",
-        default=True)
+        description="Give a rebuilt surface its sharp creases back after smoothing: for hard-surface props "
+                    "(lumpy organic shapes get needle-shaped triangles)",
+        default=False)
     sharpen_amount: FloatProperty(name="Amount", description="How strongly creases and corners are crisped",
                                   default=0.5, min=0.0, soft_max=2.0)
     field_resolution: IntProperty(

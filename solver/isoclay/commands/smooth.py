@@ -14,9 +14,9 @@ def add_parser(sub):
                    help="size of the bumps to remove, in the mesh's units (e.g. 2 for 2 mm bumps on a model in mm)")
     p.add_argument("--no-preserve-volume", dest="preserve_volume", action="store_false",
                    help="let the flow shrink the object as plain curvature flow does")
-    p.add_argument("--soft-creases", dest="crisp_creases", action="store_false",
-                   help="leave creases as the field's grid rounds them (by default a remeshed result gets its "
-                        "creases put back sharp; smoothly curved parts are never touched)")
+    p.add_argument("--crisp-creases", action="store_true",
+                   help="give the remeshed result back the sharp creases the field's grid rounds off: for "
+                        "hard-surface props (on lumpy organic scans it leaves needle-shaped triangles)")
     add_surface_options(p, "smoothed")
     add_edit_options(p)
     return p
