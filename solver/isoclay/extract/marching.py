@@ -112,7 +112,8 @@ def narrow_band_values(field, lo, cell: float, cells_per_axis, progress=no_progr
     """Values on a fine node lattice, evaluated only near the surface.
 
     cells_per_axis : (3,) multiples of COARSEST_STEP. Returns (values (nx+1, ny+1, nz+1)
-    float32, number of field evaluations).
+    float32, evaluated (same shape, bool: True where the value is the field's own), number of
+    field evaluations). Every cell whose corners change sign has all its corners evaluated.
 
     Three stages. Down to lattice step CAREFUL_STEP, cells are split when all their corners
     lie within BAND diagonals of the surface, which cannot miss surface of a distance field.
@@ -167,7 +168,7 @@ def narrow_band_values(field, lo, cell: float, cells_per_axis, progress=no_progr
         _evaluate_at(nodes, lattice, exact, evaluate)
         cells = _unresolved_cells_touching(nodes, lattice, exact, corners)
     progress("extract", 0.9, {"grid": int(max(lattice.shape)) - 1, "evaluated": evaluations})
-    return lattice, evaluations
+    return lattice, exact, evaluations
 
 
 def extract_mesh(
@@ -195,7 +196,7 @@ def extract_mesh(
     cells = np.ceil((hi - lo) / cell + 2).astype(int)
     cells = ((cells + COARSEST_STEP - 1) // COARSEST_STEP) * COARSEST_STEP
     origin = (lo + hi) / 2 - cells * cell / 2
-    grid, evaluations = narrow_band_values(field, origin, cell, cells, progress, should_stop)
+    grid, evaluated, evaluations = narrow_band_values(field, origin, cell, cells, progress, should_stop)
     for axis in range(3):  # close the surface at the box walls
         for end in (0, -1):
             face = np.take(grid, end, axis=axis)
@@ -206,10 +207,17 @@ def extract_mesh(
     if not (grid.min() < 0 < grid.max()):
         raise_empty(grid)
     # no node value lies within OFF_ZERO cells of zero, so no triangle is degenerate and
-    # scikit-image's slower clean-up is needed only if that ever fails
-    verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=True)
+    # scikit-image's slower clean-up is needed only if that ever fails. Marching cubes visits
+    # only cells whose lowest corner is in the mask: the evaluated nodes (every cell the
+    # surface passes has all corners evaluated) and the wall layers closed above.
+    visit = evaluated
+    for axis in range(3):
+        sl = [slice(None)] * 3
+        sl[axis] = [0, -2, -1]
+        visit[tuple(sl)] = True
+    verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=True, mask=visit)
     if measures.has_degenerate_faces(verts, faces):
-        verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=False)
+        verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=False, mask=visit)
     verts = verts.astype(np.float64) + origin
     faces = faces.astype(np.int64)
     if measures.signed_volume(verts, faces) < 0:
