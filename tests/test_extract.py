@@ -127,6 +127,24 @@ def test_values_at_zero_give_no_degenerate_triangles():
     np.testing.assert_allclose(measures.signed_volume(m.vertices, m.faces), 4 / 3 * 0.25**3, rtol=0.01)
 
 
+def test_surface_cut_by_the_box_is_closed_at_the_walls():
+    # A sphere larger than the extraction box: the mesh is closed along the box's walls, so it
+    # must be watertight and hold about the volume of the sphere's part inside the grid
+    # (sphere volume 4/3 pi r^3 minus six caps pi h^2 (3r - h) / 3, common practice).
+    r, half = 0.5, 0.45
+    m = extract_mesh(SphereSDF(r), [-half] * 3, [half] * 3, 48)
+    assert measures.is_watertight(m.faces)
+    grid_half = np.abs(m.vertices).max()  # the walls sit where the grid ends
+    h = r - grid_half
+    expected = 4 / 3 * np.pi * r**3 - 6 * np.pi * h**2 * (3 * r - h) / 3
+    np.testing.assert_allclose(measures.signed_volume(m.vertices, m.faces), expected, rtol=0.02)
+    # a box deep inside the shape: only the walls make surface; the result is the closed box
+    m = extract_mesh(SphereSDF(2.0), [-0.3] * 3, [0.3] * 3, 32)
+    assert measures.is_watertight(m.faces)
+    side = np.ptp(m.vertices, axis=0)
+    np.testing.assert_allclose(measures.signed_volume(m.vertices, m.faces), np.prod(side), rtol=0.02)
+
+
 def test_empty_box_is_a_clear_failure():
     from isoclay.errors import SolverFailure
 

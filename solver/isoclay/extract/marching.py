@@ -208,12 +208,13 @@ def extract_mesh(
         raise_empty(grid)
     # no node value lies within OFF_ZERO cells of zero, so no triangle is degenerate and
     # scikit-image's slower clean-up is needed only if that ever fails. Marching cubes visits
-    # only cells whose lowest corner is in the mask: the evaluated nodes (every cell the
-    # surface passes has all corners evaluated) and the wall layers closed above.
+    # only cells with a corner in the mask (scikit-image tests the cell's highest corner,
+    # measured): the evaluated nodes (every cell the surface passes has all corners
+    # evaluated) and the two layers at each wall closed above.
     visit = evaluated
     for axis in range(3):
         sl = [slice(None)] * 3
-        sl[axis] = [0, -2, -1]
+        sl[axis] = [0, 1, -2, -1]
         visit[tuple(sl)] = True
     verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=True, mask=visit)
     if measures.has_degenerate_faces(verts, faces):
