@@ -6,7 +6,7 @@ import torch
 import trimesh
 
 from isoclay.extract import decimate, extract_mesh
-from isoclay.extract.marching import OFF_ZERO, dense_grid_values
+from isoclay.extract.marching import OFF_ZERO, dense_grid_values, grid_layout
 from isoclay.field.analytic import SphereSDF, TorusSDF
 from isoclay.mesh import make_mesh, measures
 
@@ -47,10 +47,7 @@ def test_torus_matches_dense_extraction():
     lo, hi = np.array([-0.42, -0.42, -0.12]), np.array([0.42, 0.42, 0.12])
     stats = {}
     m = extract_mesh(field, lo, hi, 64, stats=stats)
-    cell = 0.84 / 64
-    cells = np.ceil((hi - lo) / cell + 2).astype(int)
-    cells = ((cells + 15) // 16) * 16
-    origin = (lo + hi) / 2 - cells * cell / 2
+    origin, cell, cells = grid_layout(lo, hi, 64)
     dense = _off_zero(dense_grid_values(field, origin, cell, tuple(cells + 1)), cell)
     v, f, _, _ = marching_cubes(dense, 0.0, spacing=(cell,) * 3)
     assert len(f) == m.n_faces
@@ -83,10 +80,7 @@ def _dense_reference(field, lo, hi, resolution):
     """scikit-image marching_cubes on every node of the grid extract_mesh uses."""
     from skimage.measure import marching_cubes
 
-    cell = float(np.max(hi - lo)) / resolution
-    cells = np.ceil((hi - lo) / cell + 2).astype(int)
-    cells = ((cells + 15) // 16) * 16
-    origin = (lo + hi) / 2 - cells * cell / 2
+    origin, cell, cells = grid_layout(lo, hi, resolution)
     dense = _off_zero(dense_grid_values(field, origin, cell, tuple(cells + 1)), cell)
     v, f, _, _ = marching_cubes(dense, 0.0, spacing=(cell,) * 3, allow_degenerate=False)
     return v + origin, f

@@ -9,7 +9,7 @@ import torch
 from skimage.measure import marching_cubes
 
 from ..extract import bounds_of, extract_mesh
-from ..extract.marching import COARSEST_STEP, dense_grid_values
+from ..extract.marching import dense_grid_values, grid_layout
 from ..field.fit import FitConfig, _refine, fit_field
 from ..field.mlp import MLPSDF
 from ..mesh.compare import surface_distance
@@ -90,10 +90,7 @@ def _extraction(field, lo, hi, resolution: int, with_torch_dense: bool) -> dict:
         t0 = time.perf_counter()
         mesh = extract_mesh(field, lo, hi, resolution, stats=stats)
         band_seconds = min(band_seconds, time.perf_counter() - t0)
-    cell = float(np.max(hi - lo)) / resolution
-    cells = np.ceil((hi - lo) / cell + 2).astype(int)
-    cells = ((cells + COARSEST_STEP - 1) // COARSEST_STEP) * COARSEST_STEP
-    origin = (lo + hi) / 2 - cells * cell / 2
+    origin, cell, cells = grid_layout(lo, hi, resolution)
     t0 = time.perf_counter()
     dense = dense_grid_values(field, origin, cell, tuple(cells + 1))  # the evaluator extraction uses
     dense_seconds = time.perf_counter() - t0

@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..mesh.types import TriangleMesh
+from ..tasks.base import check_stop, never_stop
 
 #: A face's own patch must spread its normals by more than this (as 1 - cos of a mean
 #: angle) to count as straddling a crease...
@@ -124,7 +125,7 @@ def _guides(c: np.ndarray, n: np.ndarray, a: np.ndarray, radius: float):
         guide_spread[better] = best_spread[other[better]]
     own = spread[bucket]
     accepted = (own > 1.0 - np.cos(np.radians(MIN_SPREAD_DEGREES))) & (guide_spread < ACCEPT_RATIO * own)
-    return guide, accepted, own, guide_spread
+    return guide, accepted
 
 
 def _fit_planes(v: np.ndarray, faces: np.ndarray, target: np.ndarray, movable: np.ndarray, should_stop) -> np.ndarray:
@@ -154,10 +155,7 @@ def _fit_planes(v: np.ndarray, faces: np.ndarray, target: np.ndarray, movable: n
     rz = float((r * z).sum())
     scale = rz
     for _ in range(PLANE_FIT_ITERATIONS):
-        if should_stop is not None and should_stop():
-            from ..errors import Cancelled
-
-            raise Cancelled("cancelled while restoring creases; nothing was written")
+        check_stop(should_stop, "crease restoration")
         hp = gradient_part(p) + STAY * mask * p
         alpha = rz / max(float((p * hp).sum()), 1e-300)
         d += alpha * p
@@ -190,7 +188,7 @@ def _without_folds(v: np.ndarray, d: np.ndarray, faces: np.ndarray, target: np.n
         halvings += 1
 
 
-def restore_creases(mesh: TriangleMesh, radius: float, should_stop=None) -> tuple[TriangleMesh, CreaseReport]:
+def restore_creases(mesh: TriangleMesh, radius: float, should_stop=never_stop) -> tuple[TriangleMesh, CreaseReport]:
     """Sharpen rounded creases of a marching-cubes mesh; smooth regions stay as they are.
 
     radius : patch radius (mesh units), about 1.5 times the width of the rounding, i.e. of
@@ -199,7 +197,7 @@ def restore_creases(mesh: TriangleMesh, radius: float, should_stop=None) -> tupl
     v = mesh.vertices.astype(np.float64).copy()
     f = mesh.faces
     n, a = _normals_areas(v, f)
-    guide, accepted, _, _ = _guides(v[f].mean(axis=1), n, a, radius)
+    guide, accepted = _guides(v[f].mean(axis=1), n, a, radius)
     guided = np.flatnonzero(accepted)
     if not len(guided):
         return mesh, CreaseReport(0, 0, 0.0)

@@ -67,6 +67,18 @@ def _nodes_of_cells(cells: np.ndarray) -> np.ndarray:
     return nodes
 
 
+def grid_layout(lo, hi, resolution: int) -> tuple[np.ndarray, float, np.ndarray]:
+    """The fine grid extract_mesh uses for the box [lo, hi]: (origin (3,), cell length, cells
+    per axis (3,)). One cell of padding each side, rounded up to whole coarse blocks, centred
+    on the box."""
+    lo = np.asarray(lo, dtype=np.float64)
+    hi = np.asarray(hi, dtype=np.float64)
+    cell = float(np.max(hi - lo)) / resolution
+    cells = np.ceil((hi - lo) / cell + 2).astype(int)
+    cells = ((cells + COARSEST_STEP - 1) // COARSEST_STEP) * COARSEST_STEP
+    return (lo + hi) / 2 - cells * cell / 2, cell, cells
+
+
 def dense_grid_values(field, lo, cell: float, shape) -> np.ndarray:
     """Field values at every node of a grid (reference for benchmarks): (nx, ny, nz) float32."""
     axes = [lo[d] + cell * np.arange(shape[d]) for d in range(3)]
@@ -189,33 +201,21 @@ def extract_mesh(
     from skimage.measure import marching_cubes
 
     t0 = time.perf_counter()
-    lo = np.asarray(lo, dtype=np.float64)
-    hi = np.asarray(hi, dtype=np.float64)
-    cell = float(np.max(hi - lo)) / resolution
-    # one cell of padding each side, rounded up to whole coarse blocks
-    cells = np.ceil((hi - lo) / cell + 2).astype(int)
-    cells = ((cells + COARSEST_STEP - 1) // COARSEST_STEP) * COARSEST_STEP
-    origin = (lo + hi) / 2 - cells * cell / 2
-    grid, evaluated, evaluations = narrow_band_values(field, origin, cell, cells, progress, should_stop)
-    for axis in range(3):  # close the surface at the box walls
-        for end in (0, -1):
-            face = np.take(grid, end, axis=axis)
-            face[...] = np.maximum(face, cell)
-            sl = [slice(None)] * 3
-            sl[axis] = end
-            grid[tuple(sl)] = face
+    origin, cell, cells = grid_layout(lo, hi, resolution)
+    grid, visit, evaluations = narrow_band_values(field, origin, cell, cells, progress, should_stop)
+    # Close the surface at the box walls. Marching cubes visits only cells with a corner in
+    # `visit` (scikit-image tests the cell's highest corner, measured): the evaluated nodes
+    # (every cell the surface passes has all corners evaluated) and the two layers at each wall.
+    for axis in range(3):
+        walls = [slice(None)] * 3
+        walls[axis] = [0, -1]
+        grid[tuple(walls)] = np.maximum(grid[tuple(walls)], cell)
+        walls[axis] = [0, 1, -2, -1]
+        visit[tuple(walls)] = True
     if not (grid.min() < 0 < grid.max()):
         raise_empty(grid)
     # no node value lies within OFF_ZERO cells of zero, so no triangle is degenerate and
-    # scikit-image's slower clean-up is needed only if that ever fails. Marching cubes visits
-    # only cells with a corner in the mask (scikit-image tests the cell's highest corner,
-    # measured): the evaluated nodes (every cell the surface passes has all corners
-    # evaluated) and the two layers at each wall closed above.
-    visit = evaluated
-    for axis in range(3):
-        sl = [slice(None)] * 3
-        sl[axis] = [0, 1, -2, -1]
-        visit[tuple(sl)] = True
+    # scikit-image's slower clean-up is needed only if that ever fails
     verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=True, mask=visit)
     if measures.has_degenerate_faces(verts, faces):
         verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=False, mask=visit)

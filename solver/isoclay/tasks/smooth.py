@@ -120,12 +120,9 @@ def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> Tas
     figures = smooth_grid(grid, config, progress, should_stop)
     new_field = spline_of(grid)
     seconds = {"smooth": time.perf_counter() - t0}
-    out, more = surface_of(new_field, mesh, config.keep_topology, config.resolution, progress, should_stop, seconds, "smooth")
-    if config.crisp_creases and not config.keep_topology:
-        out, creases = crisp(out, grid.cell, progress, should_stop, seconds)
-        more.update(creases)
-        before = abs(measures.signed_volume(mesh.vertices, mesh.faces))
-        more["volume_change"] = measures.signed_volume(out.vertices, out.faces) / max(before, 1e-300) - 1.0
+    crease_radius = CREASE_PATCH_CELLS * grid.cell if config.crisp_creases else None
+    out, more = surface_of(new_field, mesh, config.keep_topology, config.resolution, progress, should_stop, seconds, "smooth",
+                           crease_radius)
     metrics = {
         "field_volume_change": enclosed_volume(grid) / max(volume_before, 1e-300) - 1.0,
         "flow_steps": float(figures["steps"]),
@@ -143,22 +140,13 @@ def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> Tas
 CREASE_PATCH_CELLS = 3.5
 
 
-def crisp(mesh: TriangleMesh, cell: float, progress, should_stop, seconds: dict) -> tuple[TriangleMesh, dict]:
-    """Restore creases on a remeshed result; returns the mesh and its figures (unit box)."""
-    from ..extract.creases import restore_creases
-
-    t = time.perf_counter()
-    progress("creases", 0.0, {})
-    out, report = restore_creases(mesh, CREASE_PATCH_CELLS * cell, should_stop)
-    progress("creases", 1.0, {"faces": report.faces_guided})
-    seconds["creases"] = time.perf_counter() - t
-    seconds["total"] = sum(v for k, v in seconds.items() if k != "total")
-    return out, {"crease_faces": float(report.faces_guided), "crease_largest_move": report.largest_move}
-
-
-def surface_of(new_field, mesh: TriangleMesh, keep_topology: bool, resolution: int, progress, should_stop, seconds: dict, task: str):
+def surface_of(new_field, mesh: TriangleMesh, keep_topology: bool, resolution: int, progress, should_stop, seconds: dict, task: str,
+               crease_radius: float | None = None):
     """The output surface: the input's vertices projected onto the new level set, or a new mesh.
 
+    crease_radius : when given, a new mesh gets its creases restored (extract.creases) with
+        patches of this radius (unit box); the metrics then carry crease_faces and
+        crease_largest_move.
     Returns (mesh, metrics). Keep-topology meshes carry per-vertex "moved" (unit-box lengths).
     """
     t1 = time.perf_counter()
@@ -175,6 +163,15 @@ def surface_of(new_field, mesh: TriangleMesh, keep_topology: bool, resolution: i
         out = extract_mesh(new_field, lo, hi, resolution, progress, should_stop)
         more = {}
         seconds["extract"] = time.perf_counter() - t1
+        if crease_radius is not None:
+            from ..extract.creases import restore_creases
+
+            t2 = time.perf_counter()
+            progress("creases", 0.0, {})
+            out, report = restore_creases(out, crease_radius, should_stop)
+            progress("creases", 1.0, {"faces": report.faces_guided})
+            more.update(crease_faces=float(report.faces_guided), crease_largest_move=report.largest_move)
+            seconds["creases"] = time.perf_counter() - t2
     before = abs(measures.signed_volume(mesh.vertices, mesh.faces))
     more["volume_change"] = measures.signed_volume(out.vertices, out.faces) / max(before, 1e-300) - 1.0
     seconds["total"] = sum(v for k, v in seconds.items() if k != "total")
