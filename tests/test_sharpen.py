@@ -13,7 +13,7 @@ from isoclay.field.analytic import RoundedBoxSDF, SphereSDF
 from isoclay.geometry import curvatures, project_to_level_set
 from isoclay.mesh import Normalization, measures
 from isoclay.tasks import sharpen
-from isoclay.tasks.base import never_stop, no_progress
+from isoclay.callbacks import never_stop, no_progress
 
 torch.set_num_threads(1)
 

@@ -12,7 +12,8 @@ from isoclay.field.analytic import SphereSDF
 from isoclay.mesh import Normalization, measures
 from isoclay.mesh.types import TriangleMesh
 from isoclay.tasks import smooth
-from isoclay.tasks.base import face_normals, never_stop, no_progress
+from isoclay.callbacks import never_stop, no_progress
+from isoclay.tasks.base import face_normals
 
 torch.set_num_threads(1)
 

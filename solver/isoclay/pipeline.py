@@ -19,7 +19,7 @@ from .mesh import measures
 from .mesh.normalize import Normalization
 from .mesh.types import TriangleMesh
 from .mesh.validate import MeshCheck, validate_mesh
-from .tasks.base import never_stop, no_progress
+from .callbacks import never_stop, no_progress
 from .tasks.registry import task_module
 
 #: Metrics that tasks report as unit-box lengths; the report converts them to the mesh's units

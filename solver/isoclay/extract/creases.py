@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..mesh.types import TriangleMesh
-from ..tasks.base import check_stop, never_stop
+from ..callbacks import check_stop, never_stop
 
 #: A face's own patch must spread its normals by more than this (as 1 - cos of a mean
 #: angle) to count as straddling a crease...

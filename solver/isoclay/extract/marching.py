@@ -20,7 +20,7 @@ import numpy as np
 from ..geometry.derivatives import values as field_values
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
-from ..tasks.base import check_stop, never_stop, no_progress
+from ..callbacks import check_stop, never_stop, no_progress
 
 #: Coarsest lattice spacing in fine cells (a power of two).
 COARSEST_STEP = 16

@@ -25,7 +25,7 @@ import torch
 
 from ..errors import InvalidInput
 from ..mesh.types import TriangleMesh
-from ..tasks.base import check_stop, never_stop, no_progress
+from ..callbacks import check_stop, never_stop, no_progress
 from .base import SDFField
 from .mlp import MLPSDF
 from .spline import DEFAULT_HALF_EXTENT, spline_from_distances

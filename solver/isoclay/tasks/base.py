@@ -1,26 +1,13 @@
-"""What every edit task shares: progress and stop callbacks, and the result record."""
+"""What every edit task shares: parameter checks and the result record (callbacks live in isoclay.callbacks)."""
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Callable, Protocol
 
 import numpy as np
 
-from ..errors import Cancelled
+from ..callbacks import Progress, check_stop, never_stop, no_progress  # noqa: F401 (re-exported for tasks)
 from ..mesh.types import TriangleMesh
-
-
-class Progress(Protocol):
-    def __call__(self, stage: str, fraction: float, info: dict) -> None: ...
-
-
-def no_progress(stage: str, fraction: float, info: dict) -> None:
-    """A progress callback that ignores everything."""
-
-
-def never_stop() -> bool:
-    return False
 
 
 def is_finite_number(value) -> bool:
@@ -39,12 +26,6 @@ def check_param_names(task: str, params, known, example: str) -> None:
     unknown = set(params) - set(known)
     if unknown:
         raise InvalidInput(f"{task}: unknown parameter(s) {', '.join(sorted(unknown))}; known: {', '.join(known)}")
-
-
-def check_stop(should_stop: Callable[[], bool], stage: str) -> None:
-    """Raise Cancelled when the user asked to stop; called between iterations of long loops."""
-    if should_stop():
-        raise Cancelled(f"cancelled during {stage}; nothing was written")
 
 
 @dataclass(frozen=True)
