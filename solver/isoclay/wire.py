@@ -48,7 +48,9 @@ _JOB_ID = re.compile(r"^[A-Za-z0-9_.:\-]{1,128}$")
 _TASK = re.compile(r"^[a-z][a-z_]{0,31}$")
 _HEX32 = re.compile(r"^[0-9a-f]{32}$")
 _HEX64 = re.compile(r"^[0-9a-f]{64}$")
-_ARRAY_NAME = re.compile(r"^(vertices|faces|value:[A-Za-z0-9_.\-]{1,64})$")
+#: vertices, faces, value:<name> (per-vertex values), handles:<group> ((k, 3) handle points of one group),
+#: source_face / source_bary (per result vertex: the source face it came from and barycentric weights there)
+_ARRAY_NAME = re.compile(r"^(vertices|faces|value:[A-Za-z0-9_.\-]{1,64}|handles:[0-9]{1,4}|source_face|source_bary)$")
 
 
 class WireError(Exception):

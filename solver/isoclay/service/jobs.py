@@ -8,7 +8,6 @@ is reported done only after its history node is committed (durable).
 
 from __future__ import annotations
 
-import math
 import multiprocessing
 import os
 import signal
@@ -18,6 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from .. import wire
+from ..estimates import estimate_memory
 from ..history.blobs import BlobStore, pack_mesh, unpack_mesh
 from ..history.store import HistoryStore, JobRow
 
@@ -73,18 +73,6 @@ def known_tasks() -> set[str]:
     from ..tasks.registry import TASK_MODULES  # no torch: the registry names modules, it does not import them
 
     return {"echo", *TASK_MODULES}
-
-
-def estimate_memory(task: str, n_vertices: int, n_faces: int, params: dict) -> int:
-    """Rough peak bytes of a worker (pre-flight check; common practice, no source: measured torch import ~0.65 GB
-    address space, spline grid and optimiser state ~40 floats per node, mesh queries ~300 bytes per element)."""
-    mesh = 3 * (24 * n_vertices + 24 * n_faces)
-    if task == "echo":
-        return (200 << 20) + mesh
-    fit = params.get("fit") if isinstance(params.get("fit"), dict) else {}
-    resolution = fit.get("resolution", 128)
-    resolution = int(resolution) if isinstance(resolution, (int, float)) and math.isfinite(resolution) else 128
-    return (800 << 20) + 40 * 4 * (resolution + 4) ** 3 + 300 * (n_vertices + n_faces) + mesh
 
 
 class JobManager:

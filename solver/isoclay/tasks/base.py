@@ -39,12 +39,16 @@ class TaskResult:
     metrics : scalar quality figures (handle_error_max, volume_change, ...), unit-box lengths
         unless the name says otherwise
     seconds : wall time per stage
+    rest_points : (n, 3) float64 or None: for each result vertex, the point of the input's space it
+        came from (a deform's pre-image, found through the edit's own map); None means "the
+        closest input surface point" (smooth, sharpen, remesh). Carries UVs and materials over.
     """
 
     mesh: TriangleMesh
     field: object | None
     metrics: dict[str, float] = field(default_factory=dict)
     seconds: dict[str, float] = field(default_factory=dict)
+    rest_points: np.ndarray | None = None
 
 
 def face_normals(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
