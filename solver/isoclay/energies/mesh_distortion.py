@@ -4,7 +4,7 @@ The same measures are applied to any method's output (ours transported through t
 libigl ARAP's), so the comparison is fair:
 - stretch per face: RMS of (eigenvalues of the triangle's 2x2 metric tensor F^T F) - 1, F the
   affine map from the rest triangle (in its own orthonormal frame) to the deformed one;
-  the discrete form of energies.stretch (common practice, no source);
+  the tangent-plane stretch of the map (common practice, no source);
 - bend per edge: |change of dihedral angle| in radians (the discrete-shell bending measure,
   Grinspun et al. 2003, "Discrete Shells");
 - flipped faces: a face whose deformed normal points against its rest normal rotated by the
