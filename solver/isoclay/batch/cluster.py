@@ -53,10 +53,9 @@ class Cluster:
     started_seconds: float
 
     def workers(self) -> dict:
-        """Worker address -> {"memory_limit": bytes or 0, "nthreads": n, "pid": ...} as the scheduler reports them."""
+        """Worker address -> {"memory_limit": bytes or 0, "nthreads": n} as the scheduler reports them."""
         info = self.client.scheduler_info(n_workers=-1)["workers"]
-        return {addr: {"memory_limit": w.get("memory_limit") or 0, "nthreads": w.get("nthreads", 1), "pid": w.get("pid")}
-                for addr, w in info.items()}
+        return {addr: {"memory_limit": w.get("memory_limit") or 0, "nthreads": w.get("nthreads", 1)} for addr, w in info.items()}
 
     def close(self) -> None:
         with contextlib.suppress(Exception):

@@ -85,7 +85,7 @@ def _finish_rows(rows_of_key: list[Row], outcome: dict, store: ResultStore, stat
 def run_batch(plan: Plan, cluster, progress=no_progress, should_stop=never_stop, info=lambda line: None,
               blender_python: Path | None = None) -> BatchResult:
     """Run every item of ``plan`` on ``cluster`` (batch.cluster.Cluster); see the module docstring."""
-    from distributed import Event, wait
+    from distributed import Event
 
     t0 = time.perf_counter()
     plan.output_folder.mkdir(parents=True, exist_ok=True)
@@ -133,10 +133,12 @@ def run_batch(plan: Plan, cluster, progress=no_progress, should_stop=never_stop,
                 for row in by_key[futures[future]]:
                     row.status, row.reason = "cancelled", "the batch was cancelled before this item finished"
             break
-        try:
-            done, pending = wait(pending, timeout=POLL_SECONDS, return_when="FIRST_COMPLETED")
-        except TimeoutError:  # nothing finished meanwhile (distributed raises instead of returning)
-            done = set()
+        # futures' states are kept current by the client's own thread: looking costs no round trip
+        # (distributed.wait would need a default client, which a caller's thread may not have)
+        done = {f for f in pending if f.done()}
+        pending -= done
+        if not done:
+            time.sleep(POLL_SECONDS)
         for future in done:
             key = futures[future]
             try:
