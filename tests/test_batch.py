@@ -148,6 +148,21 @@ def test_local_cluster_batch_broken_duplicate_then_rerun(library, cluster):
     assert all(float(rows2[name]["seconds"]) == 0.0 for name in good)
 
 
+def test_cancel_keeps_finished_items_and_writes_the_summary(library, cluster):
+    """Ctrl-C (should_stop) after the first finished item: exit 3, that item published, the rest cancelled."""
+    from isoclay.batch.runner import run_batch
+
+    plan = load_plan(write_plan(library, "clean_cancelled", strength=0.9))
+    store = ResultStore(plan.output_folder)
+    result = run_batch(plan, cluster, should_stop=lambda: len(store.completions()) >= 1)
+    assert result.exit_code == 3
+    rows = read_rows(result.summary)
+    finished = [r for r in rows.values() if r["status"] in ("done", "reused")]
+    assert finished and all((plan.output_folder / r["output"]).is_file() for r in finished)
+    assert any(r["status"] == "cancelled" for r in rows.values())
+    assert all(r["output"] == "" for r in rows.values() if r["status"] == "cancelled")
+
+
 def test_worker_killed_mid_batch_every_item_done_once(library, cluster):
     from isoclay.batch.runner import run_batch
 
@@ -296,3 +311,15 @@ def test_decimate_task_against_the_sphere_formula():
     for bad in ({"target_faces": 3}, {"target_faces": 2.5}, {}, {"target_faces": 100, "ratio": 0.5}, {"target_faces": True}):
         with pytest.raises(InvalidInput):
             Config.from_params(bad)
+
+
+def test_readme_plan_example_is_a_valid_plan(tmp_path):
+    """The plan shown in README "Cleaning a scan library" parses and checks as written."""
+    import re
+
+    text = (ROOT / "README.md").read_text().split("## Cleaning a scan library", 1)[1].split("\n## ", 1)[0]
+    plan_text = re.findall(r"```toml\n(.+?)\n```", text, flags=re.S)[0]
+    write_library(tmp_path / "scans", count=1)
+    (tmp_path / "plan.toml").write_text(plan_text)
+    plan = load_plan(tmp_path / "plan.toml")
+    assert [s.task for s in plan.items[0].steps] == ["remesh", "smooth", "decimate"]
