@@ -169,8 +169,10 @@ def cycles_thumbnails(pairs: list[dict], workdir: Path, blender_python: Path, si
         lines = [line for line in done.stderr.splitlines() if line.strip()]
         raise InvalidInput(f"Cycles thumbnails failed: {lines[-1] if lines else 'no message'}")
     listing = json.loads(done.stdout)
+    # render_views.py also renders a heat view per pair; the before/after renders alone are summed apart
     return {"pictures": {p["name"]: (Path(p["before"]), Path(p["after"])) for p in listing["pictures"]},
-            "seconds": time.perf_counter() - t0}
+            "seconds": time.perf_counter() - t0,
+            "before_after_render_seconds": sum(p["seconds"]["before"] + p["seconds"]["after"] for p in listing["pictures"])}
 
 
 def compose(tiles: list[dict], path: Path, size=THUMB_SIZE, title: str = "") -> Path:

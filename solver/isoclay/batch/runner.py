@@ -52,7 +52,7 @@ def key_rows(plan: Plan) -> list[Row]:
 def spec_of(row: Row, plan: Plan, stop_event: str | None) -> dict:
     return {"key": row.key, "input": str(row.item.input), "relative": row.item.relative,
             "steps": [(s.task, s.params) for s in row.item.steps], "fit": row.item.fit,
-            "output_folder": str(plan.output_folder), "stop_event": stop_event, "thumbnails": plan.thumbnails == "raster"}
+            "output_folder": str(plan.output_folder), "stop_event": stop_event, "thumbnails": plan.contact_sheet and plan.thumbnails == "raster"}
 
 
 def _counts(rows, running: int) -> dict:

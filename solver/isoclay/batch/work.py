@@ -209,15 +209,20 @@ def process_item(spec: dict) -> dict:
             "bbox_diagonal": measures.bbox_diagonal(reference.vertices),
         }
         seconds = {"steps": [r["seconds"].get("total", 0.0) for r in reports], "quality": time.perf_counter() - t1}
+        if spec.get("thumbnails"):
+            from .contact_sheet import store_thumbnails
+
+            t2 = time.perf_counter()
+            store_thumbnails(store, key, mesh, final)
+            seconds["thumbnails"] = time.perf_counter() - t2
+        # the item's time includes writing its result (as a command's run includes writing its output)
         seconds["total"] = time.perf_counter() - t0
         record = {**base, "status": "done", "seconds": seconds, "quality": quality, "memory_estimate": need,
                   "memory_limit": memory_limit, "warnings": list(first.check.warnings),
                   "steps": reports, "finished": time.time()}
+        t3 = time.perf_counter()
         record = store.save(key, final, record)
-        if spec.get("thumbnails"):
-            from .contact_sheet import store_thumbnails
-
-            store_thumbnails(store, key, mesh, final)
+        seconds["total"] += time.perf_counter() - t3
         return {**base, "status": "done", "reason": "", "seconds": seconds["total"], "record": record}
     except Cancelled as exc:
         return {**base, "status": "cancelled", "reason": str(exc), "seconds": time.perf_counter() - t0}

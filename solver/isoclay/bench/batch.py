@@ -130,8 +130,10 @@ def _thumbnails(work: Path, rows, scans) -> dict:
     if python.exists():
         listing = cycles_thumbnails([{"name": f"t{i}", "before": str(b), "after": str(a)} for i, (b, a) in enumerate(pairs)],
                                     work / "cycles", python)
-        out["cycles_seconds"] = listing["seconds"]
+        out["cycles_seconds"] = listing["seconds"]  # whole call: Blender start-up, reading, three renders per pair
+        out["cycles_before_after_render_seconds"] = listing["before_after_render_seconds"]
         out["cycles_over_raster"] = listing["seconds"] / raster
+        out["cycles_renders_over_raster"] = listing["before_after_render_seconds"] / raster
     else:
         out["cycles_seconds"] = None
     return out
