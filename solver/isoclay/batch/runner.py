@@ -130,7 +130,13 @@ def run_batch(plan: Plan, cluster, progress=no_progress, should_stop=never_stop,
             info("cancelling: finished items stay; running ones stop at their next check")
             client.cancel(list(pending))
             for future in pending:
-                for row in by_key[futures[future]]:
+                key = futures[future]
+                record = store.finished(key)
+                if record is not None:  # stored by its worker, not yet reported: it finished, publish it
+                    _finish_rows(by_key[key], {"status": "done", "worker": record.get("worker", ""), "record": record,
+                                               "seconds": record.get("seconds", {}).get("total", 0.0)}, store, "done")
+                    continue
+                for row in by_key[key]:
                     row.status, row.reason = "cancelled", "the batch was cancelled before this item finished"
             break
         # futures' states are kept current by the client's own thread: looking costs no round trip
