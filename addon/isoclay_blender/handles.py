@@ -268,3 +268,66 @@ def handle_summary(obj: bpy.types.Object) -> tuple[int, int, int]:
         target = np.array([list(per_vertex[i].matrix_world.translation) for i in idx])
         moved += int((np.linalg.norm(target - handle, axis=1) > 1e-6 * np.maximum(1.0, np.linalg.norm(handle, axis=1))).sum())
     return len(ids) + len(per_vertex), int((groups > 0).sum()), moved
+
+
+#: Handle groups one request can carry: the wire allows 64 array frames (wire.MAX_ARRAYS), two of
+#: which are the mesh.
+MAX_GROUPS = 62
+
+
+def handle_groups_world(obj: bpy.types.Object) -> list[dict]:
+    """The object's handles as groups for the solver: [{"points": (k, 3) float64 world, "transform": (4, 4)
+    world motion of the group's target, "name": str}, ...] (CONTRACTS 1, group form).
+
+    A group with a target empty moves by T = M_obj @ L_now @ inverse(L_rest) @ inverse(M_obj), so
+    target = T @ point; an untouched empty gives exactly the identity. Vertices with their own empty
+    (vertex_empties) become groups too, one per distinct move (all held ones in one group). Raises
+    HandleError when there are no handles, a group lost its empty, or there are too many groups.
+    """
+    mesh = obj.data
+    groups = handle_groups(mesh)
+    marked = np.flatnonzero(groups)
+    if marked.size == 0:
+        raise HandleError(f"{obj.name!r} has no handles: select vertices in Edit Mode and add a handle first")
+    m_obj = matrix_to_numpy(obj.matrix_world)
+    local = read_positions(mesh).astype(np.float64)
+    out = []
+    per_vertex = {i: e for i, e in vertex_empties(obj).items() if 0 <= i < len(local) and groups[i] > 0}
+    if per_vertex:
+        idx = np.array(sorted(per_vertex), dtype=np.int64)
+        handle = to_world(local[idx], m_obj)
+        target = np.array([list(per_vertex[i].matrix_world.translation) for i in idx], dtype=np.float64)
+        still = np.linalg.norm(target - handle, axis=1) <= 1e-6 * np.maximum(1.0, np.linalg.norm(handle, axis=1))
+        move = np.where(still[:, None], 0.0, target - handle)
+        moves, which = np.unique(move, axis=0, return_inverse=True)
+        for k, shift in enumerate(moves):
+            transform = np.eye(4)
+            transform[:3, 3] = shift
+            name = "held vertices" if not shift.any() else f"vertex {int(idx[which.ravel() == k][0])}"
+            out.append({"points": handle[which.ravel() == k], "transform": transform, "name": name})
+        marked = marked[~np.isin(marked, idx)]
+    empties = target_empties(obj)
+    inv_obj = np.linalg.inv(m_obj)
+    for group in np.unique(groups[marked]):
+        idx = marked[groups[marked] == group]
+        empty = empties.get(int(group))
+        if empty is None:
+            raise HandleError(f"handle {group} of {obj.name!r} has lost its target empty: clear the handles and add them again")
+        rest = np.array(empty.isoclay.target_rest, dtype=np.float64).reshape(4, 4)
+        motion = _object_space(obj, empty) @ np.linalg.inv(rest)
+        if np.allclose(motion, np.eye(4), rtol=0.0, atol=1e-9):
+            transform = np.eye(4)  # untouched empty: the group stays exactly put
+        else:
+            transform = m_obj @ motion @ inv_obj
+        out.append({"points": to_world(local[idx], m_obj), "transform": transform, "name": empty.name})
+    if len(out) > MAX_GROUPS:
+        raise HandleError(f"{obj.name!r} has {len(out)} handle groups; one edit takes at most {MAX_GROUPS}: "
+                          "clear some handles and group vertices that move together")
+    return out
+
+
+def deform_request(obj: bpy.types.Object) -> tuple[list[dict], dict[str, np.ndarray]]:
+    """(params["groups"], array frames {"handles:<i>": points}) for a deform of `obj` (see handle_groups_world)."""
+    groups = handle_groups_world(obj)
+    params = [{"transform": g["transform"].tolist(), "name": g["name"][:64]} for g in groups]
+    return params, {f"handles:{i}": np.ascontiguousarray(g["points"], dtype=np.float64) for i, g in enumerate(groups)}

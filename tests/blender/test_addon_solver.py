@@ -18,7 +18,7 @@ import bpy
 import numpy as np
 import pytest
 
-from conftest import ADDON_MODULE, solver_tasks
+from conftest import ADDON_MODULE, solver_takes_handle_groups, solver_tasks
 
 FIELD_RESOLUTION = 32  # small fields keep these tests fast; quality is the solver's own tests' business
 SURFACE_RESOLUTION = 64
@@ -86,6 +86,7 @@ def test_rebuild_surface_end_to_end_with_undo_and_history(empty_scene, addon, so
         pytest.skip("the solver offers no 'remesh' task (solver/isoclay/tasks/registry.py)")
     bpy.context.scene.isoclay.field_resolution = FIELD_RESOLUTION
     bpy.context.scene.isoclay.surface_resolution = SURFACE_RESOLUTION
+    bpy.context.scene.isoclay.surface_auto = False
     source = _sphere(radius=1.0, location=(0.5, 0.0, 0.0))
     source_name = source.name
     bpy.ops.ed.undo_push(message="sphere")  # initialises undo in a headless Blender
@@ -166,7 +167,7 @@ def test_killed_solver_gives_clear_error_and_retry_works(empty_scene, addon, sol
         assert "stopped answering" in snap.error and "restart" in snap.error, snap.error
         assert "Traceback" not in snap.error and "\n" not in snap.error
         solver.tick()
-        assert solver.status == "unreachable" and "exited" in solver.detail
+        assert solver.status == "stopped unexpectedly" and "killed (SIGKILL" in solver.detail, solver.detail
     finally:
         for child in workers:  # the killed server's worker would otherwise finish its delay alone
             try:
@@ -212,9 +213,13 @@ def test_deform_end_to_end_meets_targets(empty_scene, addon, solver):
     if "deform" not in solver_tasks():
         pytest.skip("the solver offers no 'deform' task yet: solver/isoclay/tasks/registry.py lists only "
                     f"{sorted(solver_tasks())}")
+    refused = solver_takes_handle_groups()
+    if refused:  # the add-on sends the group form (CONTRACTS 1); the deform stream's tasks/deform.py parses it
+        pytest.skip(f"the solver's deform does not take handle groups yet: {refused}")
     bpy.context.scene.isoclay.field_resolution = FIELD_RESOLUTION
     bpy.context.scene.isoclay.surface_resolution = SURFACE_RESOLUTION
     bpy.context.scene.isoclay.keep_topology = True
+    bpy.context.scene.isoclay.surface_auto = False
     bpy.context.scene.isoclay.stiffness = "medium"
     bpy.ops.mesh.primitive_cylinder_add(vertices=24, radius=0.2, depth=2.0)
     bar = bpy.context.active_object
@@ -255,7 +260,7 @@ def test_smooth_end_to_end_evens_out_noise(empty_scene, addon, solver):
     _skip_without("smooth")
     settings = bpy.context.scene.isoclay
     settings.field_resolution, settings.surface_resolution = FIELD_RESOLUTION, SURFACE_RESOLUTION
-    settings.keep_topology, settings.preserve_volume, settings.smooth_strength = True, True, 0.15
+    settings.keep_topology, settings.smooth_strength, settings.surface_auto = True, 0.15, False
     obj = _sphere(radius=1.0, subdivisions=4)
     rng = np.random.default_rng(3)
     co = addon.mesh_io.read_positions(obj.data).astype(np.float64)
@@ -300,7 +305,8 @@ def test_problems_reach_the_artist_as_one_line_reports(empty_scene, addon, solve
     world, faces = _world_mesh(addon, obj)
     snap = _job(addon, "no_such_task", {}, world, faces).start().wait(timeout_s=30)
     assert snap.state == "failed"
-    assert "unknown task 'no_such_task'" in snap.error and "\n" not in snap.error
+    # in the artist's words, naming what to do
+    assert "cannot run 'no_such_task'" in snap.error and "same isoclay version" in snap.error and "\n" not in snap.error
     # a crash inside the solver's worker is a failed job with a reason; the solver keeps serving
     snap = _job(addon, "echo", {"crash": "raise", "steps": 4}, world, faces).start().wait(timeout_s=60)
     assert snap.state == "failed" and snap.error and "Traceback" not in snap.error, snap

@@ -1,0 +1,268 @@
+"""Carrying the source's surface data onto a rebuilt result through the edit's own correspondence.
+
+For each result vertex the solver names a source triangle (of the triangles the add-on sent) and
+barycentric weights there (solver: pipeline.source_correspondence). From that:
+
+- UV maps, per face corner, without smearing across seams: each result face takes one UV island,
+  the island of the source face its corners map to; a face whose corners land in different
+  islands is resolved to the island of the source face nearest its centre, and its other corners
+  are re-projected onto that island (their UVs continue the island across the seam rather than
+  averaging two places of the texture).
+- Material index per face: the corners' source face when they agree, else the nearest one.
+- Colour attributes (point or corner domain) and vertex-group weights per vertex, interpolated.
+- Seams: marked where neighbouring result faces took different islands of the active UV map.
+
+This is what Blender's Data Transfer modifier does from the nearest point, done from the edit's
+correspondence instead (for a deform, the point the material came from, not the old position).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import bpy
+import numpy as np
+
+from . import mesh_io
+
+#: UVs of two corners of one edge closer than this are continuous (same island); UV units.
+UV_TOLERANCE = 1e-5
+
+
+@dataclass(frozen=True)
+class Carried:
+    """What carry_surface_data found: notes for the artist and vertex-group weights to write on the object
+    (groups live on objects, the rest was written on the mesh). group_weights : (n, len(group_names))."""
+
+    notes: tuple
+    group_names: tuple = ()
+    group_weights: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class SourceSurface:
+    """The source as sent: local positions (n, 3), triangles (m, 3) with their corners (loops) and faces."""
+
+    positions: np.ndarray
+    tri_verts: np.ndarray
+    tri_loops: np.ndarray
+    tri_poly: np.ndarray
+
+
+# ------------------------------------------------------------------------------ numpy only
+
+def uv_islands(uv: np.ndarray, corner_vert: np.ndarray, corner_edge: np.ndarray, loop_start: np.ndarray,
+               loop_total: np.ndarray) -> np.ndarray:
+    """(P,) island label per polygon: polygons sharing an edge whose UVs agree at both ends are one island."""
+    n_poly, n_loop = len(loop_start), len(corner_vert)
+    if n_poly == 0:
+        return np.zeros(0, dtype=np.int64)
+    poly = np.repeat(np.arange(n_poly), loop_total)
+    nxt = np.arange(1, n_loop + 1)
+    nxt[loop_start + loop_total - 1] = loop_start
+    v0, v1 = corner_vert, corner_vert[nxt]
+    uv0, uv1 = uv, uv[nxt]
+    swap = v0 > v1  # express every corner's edge UVs from its lower vertex to its higher one
+    lo = np.where(swap[:, None], uv1, uv0)
+    hi = np.where(swap[:, None], uv0, uv1)
+    order = np.argsort(corner_edge, kind="stable")
+    e = corner_edge[order]
+    same_edge = e[1:] == e[:-1]
+    a, b = order[:-1][same_edge], order[1:][same_edge]
+    agree = (np.abs(lo[a] - lo[b]).max(axis=1) <= UV_TOLERANCE) & (np.abs(hi[a] - hi[b]).max(axis=1) <= UV_TOLERANCE)
+    return connected_labels(n_poly, poly[a[agree]], poly[b[agree]])
+
+
+def connected_labels(n: int, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """(n,) label per node of the graph with edges (a, b): the smallest node index of its component."""
+    labels = np.arange(n)
+    if len(a) == 0:
+        return labels
+    while True:
+        low = np.minimum(labels[a], labels[b])
+        before = labels.copy()
+        np.minimum.at(labels, a, low)
+        np.minimum.at(labels, b, low)
+        while True:  # pointer jumping
+            jumped = labels[labels]
+            if np.array_equal(jumped, labels):
+                break
+            labels = jumped
+        if np.array_equal(labels, before):
+            return labels
+
+
+def interpolate(values: np.ndarray, corners: np.ndarray, face: np.ndarray, bary: np.ndarray) -> np.ndarray:
+    """(n, c) values at result vertices: bary-weighted values[corners[face]] (zeros where face is -1).
+
+    values : (N, c) per source vertex or corner; corners : (m, 3) indices into values per triangle.
+    """
+    out = np.zeros((len(face), values.shape[1]), dtype=np.float64)
+    ok = face >= 0
+    idx = corners[face[ok]]
+    out[ok] = np.einsum("ij,ijk->ik", bary[ok].astype(np.float64), values[idx].astype(np.float64))
+    return out
+
+
+# ------------------------------------------------------------------------------ Blender side
+
+def source_surface(mesh: bpy.types.Mesh, positions: np.ndarray | None = None) -> SourceSurface:
+    """The triangles of `mesh` exactly as mesh_io.read_triangles sends them, with corners and faces."""
+    loops, poly = mesh_io.read_corner_triangles(mesh)
+    corner_vert = mesh_io.read_corner_verts(mesh)
+    pos = mesh_io.read_positions(mesh) if positions is None else positions
+    return SourceSurface(np.asarray(pos, dtype=np.float64), corner_vert[loops].astype(np.int64), loops, poly)
+
+
+class _Nearest:
+    """Closest-triangle queries on (a subset of) the source, built on first use (mathutils BVHTree)."""
+
+    def __init__(self, surface: SourceSurface, triangles: np.ndarray):
+        from mathutils.bvhtree import BVHTree
+
+        self.triangles = triangles
+        self.surface = surface
+        self.tree = BVHTree.FromPolygons(surface.positions.tolist(), surface.tri_verts[triangles].tolist())
+
+    def query(self, points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(k,) source triangle indices and (k, 3) barycentric weights of the nearest points."""
+        tri = np.zeros(len(points), dtype=np.int64)
+        loc = np.zeros((len(points), 3))
+        for i, p in enumerate(points.tolist()):
+            hit = self.tree.find_nearest(p)
+            if hit[2] is not None:
+                tri[i] = self.triangles[hit[2]]
+                loc[i] = hit[0]
+        v = self.surface.positions[self.surface.tri_verts[tri]]
+        return tri, _barycentric(loc, v[:, 0], v[:, 1], v[:, 2])
+
+
+def _barycentric(p, a, b, c) -> np.ndarray:
+    v0, v1, v2 = b - a, c - a, p - a
+    d00, d01, d11 = (v0 * v0).sum(1), (v0 * v1).sum(1), (v1 * v1).sum(1)
+    d20, d21 = (v2 * v0).sum(1), (v2 * v1).sum(1)
+    den = d00 * d11 - d01 * d01
+    den = np.where(np.abs(den) > 0, den, 1.0)
+    v = (d11 * d20 - d01 * d21) / den
+    w = (d00 * d21 - d01 * d20) / den
+    out = np.clip(np.stack([1 - v - w, v, w], 1), 0.0, 1.0)
+    return out / np.maximum(out.sum(1, keepdims=True), 1e-30)
+
+
+def carry_surface_data(source_obj: bpy.types.Object, source_mesh: bpy.types.Mesh, surface: SourceSurface,
+                       result: bpy.types.Mesh, result_faces: np.ndarray, face: np.ndarray, bary: np.ndarray,
+                       skip_names: set) -> Carried:
+    """Write UVs, material indices, colours and seams onto `result`; vertex-group weights come back in Carried.
+
+    source_mesh : the source's evaluated mesh the triangles came from (UVs, materials, colours,
+        weights are read from it); result_faces : (r, 3) triangles of `result` (its corner order);
+    face, bary : the solver's correspondence, per result vertex.
+    """
+    face = np.asarray(face, dtype=np.int64)
+    bary = np.asarray(bary, dtype=np.float64)
+    if face.max(initial=-1) >= len(surface.tri_verts):
+        return Carried(("the source changed since the edit: its UVs, materials and colours were not carried over",))
+    n_poly = len(source_mesh.polygons)
+    vert_poly = np.where(face >= 0, surface.tri_poly[np.maximum(face, 0)], -1)
+    corner_poly = vert_poly[result_faces]  # (r, 3)
+    points = interpolate(surface.positions, surface.tri_verts, face, bary)  # source points per result vertex
+    centres = points[result_faces].mean(axis=1)
+
+    materials = np.zeros(n_poly, dtype=np.int32)
+    if n_poly:
+        source_mesh.polygons.foreach_get("material_index", materials)
+    islands = {}
+    loop_start = np.empty(n_poly, dtype=np.int32)
+    loop_total = np.empty(n_poly, dtype=np.int32)
+    source_mesh.polygons.foreach_get("loop_start", loop_start)
+    source_mesh.polygons.foreach_get("loop_total", loop_total)
+    corner_vert = mesh_io.read_corner_verts(source_mesh)
+    corner_edge = mesh_io.read_corner_edges(source_mesh)
+    uvs = {}
+    for layer in source_mesh.uv_layers:
+        uv = np.empty(len(source_mesh.loops) * 2, dtype=np.float32)
+        layer.uv.foreach_get("vector", uv)
+        uvs[layer.name] = uv.reshape(-1, 2)
+        islands[layer.name] = uv_islands(uvs[layer.name], corner_vert, corner_edge, loop_start, loop_total)
+
+    # faces whose corners disagree about the material or an island take the source face nearest their centre
+    safe = np.maximum(corner_poly, 0)
+    disagree = (materials[safe].min(1) != materials[safe].max(1)) | (corner_poly.min(1) < 0)
+    for labels in islands.values():
+        isl = labels[safe]
+        disagree |= isl.min(1) != isl.max(1)
+    face_poly = corner_poly[:, 0].copy()
+    if disagree.any() and len(surface.tri_verts):
+        nearest = _Nearest(surface, np.arange(len(surface.tri_verts)))
+        tri, _ = nearest.query(centres[disagree])
+        face_poly[disagree] = surface.tri_poly[tri]
+    face_poly = np.maximum(face_poly, 0)
+
+    if n_poly:
+        result.polygons.foreach_set("material_index", materials[face_poly].astype(np.int32))
+
+    active_uv = source_mesh.uv_layers.active.name if source_mesh.uv_layers.active else None
+    for name, uv in uvs.items():
+        labels = islands[name]
+        per_vertex = interpolate(uv, surface.tri_loops, face, bary)
+        corner_uv = per_vertex[result_faces]  # (r, 3, 2)
+        want = labels[face_poly]  # (r,) the island each face takes
+        stray = labels[safe] != want[:, None]
+        stray &= corner_poly >= 0
+        for island in np.unique(want[stray.any(axis=1)]):
+            rows, cols = np.nonzero(stray & (want == island)[:, None])
+            tris = np.flatnonzero(labels[surface.tri_poly] == island)
+            tri, weights = _Nearest(surface, tris).query(points[result_faces[rows, cols]])
+            loops = surface.tri_loops[tri]
+            corner_uv[rows, cols] = np.einsum("ij,ijk->ik", weights, uv[loops].astype(np.float64))
+        layer = result.uv_layers.new(name=name)
+        layer.uv.foreach_set("vector", corner_uv.astype(np.float32).ravel())
+        if name == active_uv:
+            result.uv_layers.active = layer
+            _mark_seams(result, want)
+
+    for attr in source_mesh.color_attributes:
+        if attr.name in skip_names or attr.domain not in ('POINT', 'CORNER'):
+            continue
+        count = len(source_mesh.vertices) if attr.domain == 'POINT' else len(source_mesh.loops)
+        raw = np.empty(count * 4, dtype=np.float32)
+        attr.data.foreach_get("color", raw)
+        corners = surface.tri_verts if attr.domain == 'POINT' else surface.tri_loops
+        per_vertex = interpolate(raw.reshape(-1, 4), corners, face, bary).astype(np.float32)
+        out = result.color_attributes.new(attr.name, attr.data_type, attr.domain)
+        out.data.foreach_set("color", (per_vertex if attr.domain == 'POINT' else per_vertex[result_faces.ravel()]).ravel())
+    if source_mesh.color_attributes.active_color_name in result.color_attributes:
+        result.color_attributes.active_color_name = source_mesh.color_attributes.active_color_name
+
+    groups = list(source_obj.vertex_groups)
+    if groups:
+        weights = np.zeros((len(source_mesh.vertices), len(groups)), dtype=np.float32)
+        for v in source_mesh.vertices:
+            for g in v.groups:
+                if g.group < len(groups):
+                    weights[v.index, g.group] = g.weight
+        carried = interpolate(weights, surface.tri_verts, face, bary).astype(np.float32)
+        return Carried((), tuple(g.name for g in groups), carried)
+    return Carried(())
+
+
+def _mark_seams(mesh: bpy.types.Mesh, island_of_face: np.ndarray) -> None:
+    """Seams on the edges between result faces (triangles, corners 3r..3r+2) that took different islands."""
+    edges = mesh_io.read_corner_edges(mesh)
+    owner = np.repeat(np.arange(len(mesh.polygons)), 3)
+    order = np.argsort(edges, kind="stable")
+    e = edges[order]
+    pair = e[1:] == e[:-1]
+    a, b = owner[order[:-1][pair]], owner[order[1:][pair]]
+    seam = np.zeros(len(mesh.edges), dtype=bool)
+    seam[e[1:][pair][island_of_face[a] != island_of_face[b]]] = True
+    mesh.edges.foreach_set("use_seam", seam)
+
+
+def write_vertex_groups(obj: bpy.types.Object, names: list[str], weights: np.ndarray) -> None:
+    """Vertex groups `names` on `obj` with (n, len(names)) weights (zeros left out)."""
+    for k, name in enumerate(names):
+        group = obj.vertex_groups.new(name=name)
+        column = weights[:, k]
+        for i in np.flatnonzero(column > 0).tolist():
+            group.add((i,), float(column[i]), 'REPLACE')
