@@ -11,7 +11,8 @@ from bpy.props import StringProperty
 from . import handles, jobs, mesh_io, preflight, results, solver_process
 from .messages import for_artist
 from .preferences import configure_link, get_prefs
-from .properties import (MAX_RADIUS_REL, MAX_STRENGTH_REL, ensure_source_key, source_key_of)
+from .limits import MAX_RADIUS_REL, MAX_STRENGTH_REL
+from .properties import ensure_source_key, source_key_of
 from .summaries import describe_edit
 
 TIMER_STEP_S = 0.1

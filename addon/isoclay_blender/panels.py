@@ -65,7 +65,7 @@ def swatch_icons() -> list[int]:
     """Icon ids of small squares in the distortion colour map, dark to bright (made once per session)."""
     import bpy.utils.previews
 
-    from .mesh_io import ramp_srgb
+    from .colours import ramp_srgb
 
     coll = _SWATCHES["collection"]
     if coll is None:

@@ -6,6 +6,7 @@ from __future__ import annotations
 import uuid
 
 import bpy
+from .limits import FIELD_DETAIL_RANGE, SHARPEN_AMOUNT_RANGE, SURFACE_DETAIL_RANGE
 from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProperty, FloatVectorProperty,
                        IntProperty, PointerProperty, StringProperty)
 
@@ -80,14 +81,6 @@ CREASE_ITEMS = [
     ("crisp", "Crisp", "Always restore sharp creases (hard-surface props)"),
     ("soft", "Soft", "Never restore creases (organic scans)"),
 ]
-
-# Limits the solver enforces, mirrored so the sliders cannot ask for what it refuses
-# (tests/test_addon_limits.py checks them against the solver's own checks).
-FIELD_DETAIL_RANGE = (16, 512)      # field.fit.FitConfig.validated
-SURFACE_DETAIL_RANGE = (16, 1024)   # tasks: resolution
-SHARPEN_AMOUNT_RANGE = (0.01, 1.0)  # tasks.sharpen: above 0, at most 1
-MAX_STRENGTH_REL = 0.25             # tasks.smooth.MAX_STRENGTH_REL: strength <= this x the longest side
-MAX_RADIUS_REL = 0.2                # tasks.sharpen.MAX_RADIUS: radius <= this x the longest side
 
 
 def _distortion_view_changed(self, context):

@@ -185,12 +185,9 @@ def carry_surface_data(source_obj: bpy.types.Object, source_mesh: bpy.types.Mesh
         uvs[layer.name] = uv.reshape(-1, 2)
         islands[layer.name] = uv_islands(uvs[layer.name], corner_vert, corner_edge, loop_start, loop_total)
 
-    # faces whose corners disagree about the material or an island take the source face nearest their centre
+    # faces whose corners disagree about the material take the material of the source face nearest their centre
     safe = np.maximum(corner_poly, 0)
     disagree = (materials[safe].min(1) != materials[safe].max(1)) | (corner_poly.min(1) < 0)
-    for labels in islands.values():
-        isl = labels[safe]
-        disagree |= isl.min(1) != isl.max(1)
     face_poly = corner_poly[:, 0].copy()
     if disagree.any() and len(surface.tri_verts):
         nearest = _Nearest(surface, np.arange(len(surface.tri_verts)))
@@ -202,24 +199,15 @@ def carry_surface_data(source_obj: bpy.types.Object, source_mesh: bpy.types.Mesh
         result.polygons.foreach_set("material_index", materials[face_poly].astype(np.int32))
 
     active_uv = source_mesh.uv_layers.active.name if source_mesh.uv_layers.active else None
+    homes = {}  # result face -> nearest source triangle to its centre, shared by every UV map
     for name, uv in uvs.items():
-        labels = islands[name]
-        per_vertex = interpolate(uv, surface.tri_loops, face, bary)
-        corner_uv = per_vertex[result_faces]  # (r, 3, 2)
-        want = labels[face_poly]  # (r,) the island each face takes
-        stray = labels[safe] != want[:, None]
-        stray &= corner_poly >= 0
-        for island in np.unique(want[stray.any(axis=1)]):
-            rows, cols = np.nonzero(stray & (want == island)[:, None])
-            tris = np.flatnonzero(labels[surface.tri_poly] == island)
-            tri, weights = _Nearest(surface, tris).query(points[result_faces[rows, cols]])
-            loops = surface.tri_loops[tri]
-            corner_uv[rows, cols] = np.einsum("ij,ijk->ik", weights, uv[loops].astype(np.float64))
+        corner_uv = _corner_uvs(surface, uv, islands[name][surface.tri_poly], result_faces, face, bary, points,
+                                centres, homes)
         layer = result.uv_layers.new(name=name)
         layer.uv.foreach_set("vector", corner_uv.astype(np.float32).ravel())
         if name == active_uv:
             result.uv_layers.active = layer
-            _mark_seams(result, want)
+            _mark_seams(result, corner_uv.reshape(-1, 2))
 
     for attr in source_mesh.color_attributes:
         if attr.name in skip_names or attr.domain not in ('POINT', 'CORNER'):
@@ -246,16 +234,134 @@ def carry_surface_data(source_obj: bpy.types.Object, source_mesh: bpy.types.Mesh
     return Carried(())
 
 
-def _mark_seams(mesh: bpy.types.Mesh, island_of_face: np.ndarray) -> None:
-    """Seams on the edges between result faces (triangles, corners 3r..3r+2) that took different islands."""
+def uv_adjacency(surface: SourceSurface, uv: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """CSR (offsets (m+1,), neighbours) of source triangles sharing an edge whose UVs agree at both ends."""
+    m = len(surface.tri_verts)
+    tri = np.repeat(np.arange(m), 3)
+    la, lb = surface.tri_loops.ravel(), surface.tri_loops[:, [1, 2, 0]].ravel()
+    va, vb = surface.tri_verts.ravel(), surface.tri_verts[:, [1, 2, 0]].ravel()
+    swap = va > vb
+    lo_v, hi_v = np.where(swap, vb, va), np.where(swap, va, vb)
+    lo_uv, hi_uv = np.where(swap[:, None], uv[lb], uv[la]), np.where(swap[:, None], uv[la], uv[lb])
+    order = np.lexsort((hi_v, lo_v))
+    same = (lo_v[order][1:] == lo_v[order][:-1]) & (hi_v[order][1:] == hi_v[order][:-1])
+    a, b = order[:-1][same], order[1:][same]
+    agree = (np.abs(lo_uv[a] - lo_uv[b]).max(1) <= UV_TOLERANCE) & (np.abs(hi_uv[a] - hi_uv[b]).max(1) <= UV_TOLERANCE)
+    ta, tb = tri[a[agree]], tri[b[agree]]
+    src, dst = np.concatenate([ta, tb]), np.concatenate([tb, ta])
+    order = np.argsort(src, kind="stable")
+    offsets = np.searchsorted(src[order], np.arange(m + 1))
+    return offsets, dst[order]
+
+
+def uv_scale(surface: SourceSurface, uv: np.ndarray) -> np.ndarray:
+    """(m,) largest UV length per unit of surface length in each source triangle (0 for degenerate UVs)."""
+    p = surface.positions[surface.tri_verts]
+    q = uv[surface.tri_loops].astype(np.float64)
+    e1, e2 = p[:, 1] - p[:, 0], p[:, 2] - p[:, 0]
+    n1 = np.linalg.norm(e1, axis=1)
+    x = e1 / np.maximum(n1, 1e-30)[:, None]
+    y = e2 - (e2 * x).sum(1)[:, None] * x
+    ny = np.linalg.norm(y, axis=1)
+    # 2x2 map from the triangle's own plane coordinates to UV; its largest singular value
+    a = np.stack([n1, (e2 * x).sum(1)], 1), np.stack([np.zeros_like(n1), ny], 1)
+    du1, du2 = q[:, 1] - q[:, 0], q[:, 2] - q[:, 0]
+    det = n1 * ny
+    ok = det > 1e-30
+    inv = np.where(ok, 1.0 / np.where(ok, det, 1.0), 0.0)
+    # J = [du1 du2] @ inverse([[n1, e2.x], [0, ny]])
+    j11 = du1[:, 0] * ny * inv
+    j12 = (du2[:, 0] * n1 - du1[:, 0] * a[0][:, 1]) * inv
+    j21 = du1[:, 1] * ny * inv
+    j22 = (du2[:, 1] * n1 - du1[:, 1] * a[0][:, 1]) * inv
+    j = np.stack([np.stack([j11, j12], 1), np.stack([j21, j22], 1)], 1)
+    return np.where(ok, np.linalg.norm(j, ord=2, axis=(1, 2)), 0.0)
+
+
+#: A result face whose UVs stretch more than this many times the source's own scale there straddles a
+#: cut of the UV map (a seam inside one island, like a cylinder's) and is resolved, not interpolated.
+STRAY_STRETCH = 3.0
+
+
+def _corner_uvs(surface, uv, tri_island, result_faces, face, bary, points, centres, homes) -> np.ndarray:
+    """(r, 3, 2) UVs of the result's corners for one UV map (see the module docstring)."""
+    from mathutils.geometry import closest_point_on_tri
+
+    per_vertex = interpolate(uv, surface.tri_loops, face, bary)
+    corner_uv = per_vertex[result_faces]  # (r, 3, 2)
+    corner_tri = np.where(face >= 0, face, 0)[result_faces]
+    isl = tri_island[corner_tri]
+    stray_face = isl.min(1) != isl.max(1)
+    scale = uv_scale(surface, uv)
+    p = points[result_faces]
+    edge_3d = np.linalg.norm(p - p[:, [1, 2, 0]], axis=2)
+    edge_uv = np.linalg.norm(corner_uv - corner_uv[:, [1, 2, 0]], axis=2)
+    allowed = STRAY_STRETCH * scale[corner_tri].max(1)[:, None] * edge_3d + 10 * UV_TOLERANCE
+    stray_face |= (edge_uv > allowed).any(axis=1)
+    if not stray_face.any():
+        return corner_uv
+    offsets, neighbours = uv_adjacency(surface, uv)
+    todo = np.flatnonzero(stray_face)
+    missing = [r for r in todo.tolist() if r not in homes]
+    if missing:
+        tri, _ = _Nearest(surface, np.arange(len(surface.tri_verts))).query(centres[missing])
+        homes.update(zip(missing, tri.tolist()))
+    pos = surface.positions
+    for r in todo.tolist():
+        home = homes[r]
+        radius = 1.5 * np.linalg.norm(p[r] - centres[r], axis=1).max() + 1e-9  # every corner's nearest point is inside
+        patch = _patch(home, offsets, neighbours, pos[surface.tri_verts], centres[r], radius)
+        for k in range(3):
+            if corner_tri[r, k] in patch:
+                continue
+            best, best_d, best_w = home, np.inf, None
+            target = p[r, k].tolist()
+            for t in patch:
+                a, b, c = pos[surface.tri_verts[t]]
+                hit = np.array(closest_point_on_tri(target, a.tolist(), b.tolist(), c.tolist()))
+                d = float(np.sum((hit - p[r, k]) ** 2))
+                if d < best_d:
+                    best, best_d, best_w = t, d, hit
+            tv = pos[surface.tri_verts[best]]
+            w = _barycentric(best_w[None], tv[0:1], tv[1:2], tv[2:3])[0]
+            corner_uv[r, k] = w @ uv[surface.tri_loops[best]].astype(np.float64)
+    return corner_uv
+
+
+def _patch(home: int, offsets, neighbours, tri_points, centre, radius) -> set:
+    """Source triangles reachable from `home` across UV-continuous edges and within `radius` of `centre`."""
+    seen, front = {home}, [home]
+    while front:
+        nxt = []
+        for t in front:
+            for n in neighbours[offsets[t]:offsets[t + 1]].tolist():
+                mid = tri_points[n].mean(axis=0)
+                reach = np.linalg.norm(tri_points[n] - mid, axis=1).max()
+                if n not in seen and np.linalg.norm(mid - centre) - reach <= radius:
+                    seen.add(n)
+                    nxt.append(n)
+        front = nxt
+        if len(seen) > 2000:
+            break
+    return seen
+
+
+def _mark_seams(mesh: bpy.types.Mesh, corner_uv: np.ndarray) -> None:
+    """Seams on the result's edges where the two faces' UVs at the shared corners differ (its UV cuts)."""
     edges = mesh_io.read_corner_edges(mesh)
-    owner = np.repeat(np.arange(len(mesh.polygons)), 3)
+    verts = mesh_io.read_corner_verts(mesh)
+    n = len(edges)
+    nxt = np.arange(n).reshape(-1, 3)[:, [1, 2, 0]].ravel()  # triangles: corners 3r..3r+2
+    va, vb = verts, verts[nxt]
+    swap = va > vb
+    lo = np.where(swap[:, None], corner_uv[nxt], corner_uv)
+    hi = np.where(swap[:, None], corner_uv, corner_uv[nxt])
     order = np.argsort(edges, kind="stable")
-    e = edges[order]
-    pair = e[1:] == e[:-1]
-    a, b = owner[order[:-1][pair]], owner[order[1:][pair]]
+    same = edges[order][1:] == edges[order][:-1]
+    a, b = order[:-1][same], order[1:][same]
+    cut = (np.abs(lo[a] - lo[b]).max(1) > 1e-4) | (np.abs(hi[a] - hi[b]).max(1) > 1e-4)
     seam = np.zeros(len(mesh.edges), dtype=bool)
-    seam[e[1:][pair][island_of_face[a] != island_of_face[b]]] = True
+    seam[edges[a[cut]]] = True
     mesh.edges.foreach_set("use_seam", seam)
 
 

@@ -311,3 +311,81 @@ def test_problems_reach_the_artist_as_one_line_reports(empty_scene, addon, solve
     snap = _job(addon, "echo", {"crash": "raise", "steps": 4}, world, faces).start().wait(timeout_s=60)
     assert snap.state == "failed" and snap.error and "Traceback" not in snap.error, snap
     assert _job(addon, "echo", {"delay_s": 0.1, "steps": 1}, world, faces).start().wait(30).state == "done"
+
+
+def test_history_survives_undo_of_the_edit_that_made_its_key(empty_scene, addon, solver):
+    # the source has no history key before its first edit; Ctrl-Z goes back to before that edit
+    bpy.context.scene.isoclay.field_resolution = FIELD_RESOLUTION
+    bpy.context.scene.isoclay.surface_auto, bpy.context.scene.isoclay.surface_resolution = False, 24
+    source = _sphere(subdivisions=2, location=(0.0, 3.0, 0.0))
+    name = source.name
+    assert source.isoclay.source_key == ""
+    bpy.ops.ed.undo_push(message="sphere")
+    assert bpy.ops.isoclay.remesh_shape('EXEC_DEFAULT', True) == {'FINISHED'}
+    node = bpy.context.active_object.isoclay.node_id
+    key = bpy.data.objects[name].isoclay.source_key
+    bpy.ops.ed.undo()
+    assert f"{name} remesh" not in bpy.data.objects
+    source = bpy.data.objects[name]  # references go stale across undo: found again by name
+    assert source.isoclay.source_key == key  # the undo handler put it back
+    bpy.context.view_layer.objects.active = source
+    assert bpy.ops.isoclay.refresh_history() == {'FINISHED'}
+    runtime = bpy.context.window_manager.isoclay
+    ids = [item.node_id for item in runtime.history]
+    assert node in ids
+    assert runtime.history[ids.index(node)].summary == "surface detail 24"  # from the solver's describe_edit
+    assert bpy.ops.isoclay.bring_back(node_id=node) == {'FINISHED'}
+    assert bpy.context.active_object.isoclay.node_id == node
+
+
+def test_a_44k_vertex_handle_selection_reaches_the_worker(empty_scene, addon, solver):
+    bpy.ops.mesh.primitive_grid_add(x_subdivisions=211, y_subdivisions=211, size=2.0)
+    grid = bpy.context.active_object
+    n = len(grid.data.vertices)
+    assert n >= 44_000
+    bpy.ops.object.mode_set(mode='EDIT')
+    bpy.ops.mesh.select_all(action='SELECT')
+    assert bpy.ops.isoclay.add_handle() == {'FINISHED'}
+    bpy.ops.object.mode_set(mode='OBJECT')
+    empty = addon.handles.target_empties(grid)[1]
+    empty.location.z += 0.25
+    empty.rotation_euler.x = 0.5
+    bpy.context.view_layer.update()
+    groups, arrays = addon.handles.deform_request(grid)
+    # the group's transform is the empty's world motion: every target equals T @ point (handles_and_targets)
+    points, targets = addon.handles.handles_and_targets(grid)
+    transform = np.array(groups[0]["transform"])
+    np.testing.assert_allclose(arrays["handles:0"] @ transform[:3, :3].T + transform[:3, 3], targets, atol=1e-9)
+    np.testing.assert_array_equal(arrays["handles:0"], points)
+    world, faces = _world_mesh(addon, _sphere(subdivisions=1))
+    job = addon.jobs.EditJob(_connect(addon), solver.client_module(), "echo",
+                             {"delay_s": 0.0, "steps": 1, "groups": groups}, world, faces, "grid",
+                             poll_interval_s=0.05, arrays=arrays).start()
+    snap = job.wait(timeout_s=60)
+    assert snap.state == "done", snap.error
+    metrics = job.record.metrics
+    assert metrics["handle_groups"] == 1 and metrics["handle_points"] == n
+    assert metrics["handle_sum"] == float(arrays["handles:0"].sum())  # the very array, bit for bit
+
+
+def test_a_killed_solver_is_started_again_by_the_next_edit(empty_scene, addon, solver):
+    prefs = bpy.context.preferences.addons[ADDON_MODULE].preferences
+    assert prefs.start_automatically
+    settings = bpy.context.scene.isoclay
+    settings.field_resolution, settings.surface_auto, settings.surface_resolution = FIELD_RESOLUTION, False, 24
+    old_pid = solver.local.pid
+    workers = _children(old_pid)
+    os.kill(old_pid, signal.SIGKILL)
+    solver.local.process.wait(timeout=10)
+    for child in workers:
+        try:
+            os.kill(child, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    assert solver.tick() == "stopped unexpectedly" and "SIGKILL" in solver.detail
+    _sphere(subdivisions=2, location=(0.0, -3.0, 0.0))
+    assert bpy.ops.isoclay.remesh_shape('EXEC_DEFAULT', True) == {'FINISHED'}
+    runtime = bpy.context.window_manager.isoclay
+    assert "started again" in runtime.notice and "SIGKILL" in runtime.notice
+    assert solver.local.pid != old_pid and bpy.context.active_object.isoclay.node_id
+    assert solver.wait_ready(timeout_s=30) == "connected"
