@@ -234,10 +234,15 @@ def carry_surface_data(source_obj: bpy.types.Object, source_mesh: bpy.types.Mesh
     return Carried(())
 
 
-def uv_adjacency(surface: SourceSurface, uv: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """CSR (offsets (m+1,), neighbours) of source triangles sharing an edge whose UVs agree at both ends."""
+def uv_adjacency(surface: SourceSurface, uv: np.ndarray) -> np.ndarray:
+    """(m, 3) source triangles sharing each triangle's edges with continuous UVs at both ends (-1: none).
+
+    A triangle has three edges, so at most three such neighbours on a manifold surface (a non-manifold
+    edge keeps one of its partners).
+    """
     m = len(surface.tri_verts)
     tri = np.repeat(np.arange(m), 3)
+    slot = np.tile(np.arange(3), m)
     la, lb = surface.tri_loops.ravel(), surface.tri_loops[:, [1, 2, 0]].ravel()
     va, vb = surface.tri_verts.ravel(), surface.tri_verts[:, [1, 2, 0]].ravel()
     swap = va > vb
@@ -247,11 +252,36 @@ def uv_adjacency(surface: SourceSurface, uv: np.ndarray) -> tuple[np.ndarray, np
     same = (lo_v[order][1:] == lo_v[order][:-1]) & (hi_v[order][1:] == hi_v[order][:-1])
     a, b = order[:-1][same], order[1:][same]
     agree = (np.abs(lo_uv[a] - lo_uv[b]).max(1) <= UV_TOLERANCE) & (np.abs(hi_uv[a] - hi_uv[b]).max(1) <= UV_TOLERANCE)
-    ta, tb = tri[a[agree]], tri[b[agree]]
-    src, dst = np.concatenate([ta, tb]), np.concatenate([tb, ta])
-    order = np.argsort(src, kind="stable")
-    offsets = np.searchsorted(src[order], np.arange(m + 1))
-    return offsets, dst[order]
+    a, b = a[agree], b[agree]
+    adj = np.full((m, 3), -1, dtype=np.int64)
+    adj[tri[a], slot[a]] = tri[b]
+    adj[tri[b], slot[b]] = tri[a]
+    return adj
+
+
+def closest_on_triangles(p: np.ndarray, a: np.ndarray, b: np.ndarray, c: np.ndarray) -> np.ndarray:
+    """(..., 3) closest points of triangles (a, b, c) to points p (all (..., 3)): Ericson (2005),
+    Real-Time Collision Detection, 5.1.5, by Voronoi regions, vectorised."""
+    ab, ac, ap = b - a, c - a, p - a
+    d1, d2 = (ab * ap).sum(-1), (ac * ap).sum(-1)
+    bp, cp = p - b, p - c
+    d3, d4 = (ab * bp).sum(-1), (ac * bp).sum(-1)
+    d5, d6 = (ab * cp).sum(-1), (ac * cp).sum(-1)
+    va, vb, vc = d3 * d6 - d5 * d4, d5 * d2 - d1 * d6, d1 * d4 - d3 * d2
+    denom = va + vb + vc
+    safe = np.where(np.abs(denom) > 1e-300, denom, 1.0)
+    v, w = vb / safe, vc / safe
+    out = a + ab * v[..., None] + ac * w[..., None]  # inside the face
+    def put(mask, value):
+        np.copyto(out, value, where=mask[..., None])
+    t = d4 - d3 + (d5 - d6)
+    put((va <= 0) & (d4 - d3 >= 0) & (d5 - d6 >= 0), b + (c - b) * (np.clip((d4 - d3) / np.where(t != 0, t, 1), 0, 1))[..., None])
+    put((vb <= 0) & (d2 >= 0) & (d6 <= 0), a + ac * np.clip(d2 / np.where(d2 - d6 != 0, d2 - d6, 1), 0, 1)[..., None])
+    put((vc <= 0) & (d1 >= 0) & (d3 <= 0), a + ab * np.clip(d1 / np.where(d1 - d3 != 0, d1 - d3, 1), 0, 1)[..., None])
+    put((d6 >= 0) & (d5 <= d6), c)
+    put((d3 >= 0) & (d4 <= d3), b)
+    put((d1 <= 0) & (d2 <= 0), a)
+    return out
 
 
 def uv_scale(surface: SourceSurface, uv: np.ndarray) -> np.ndarray:
@@ -283,10 +313,14 @@ def uv_scale(surface: SourceSurface, uv: np.ndarray) -> np.ndarray:
 STRAY_STRETCH = 3.0
 
 
+#: Rings of UV-continuous source triangles around a straddling face's home triangle searched for its
+#: stray corners (3 + 9 + 27 + 81 candidates): enough while result faces are no larger than a few
+#: source triangles (the usual case: a rebuilt surface is finer than or as fine as its source).
+PATCH_RINGS = 4
+
+
 def _corner_uvs(surface, uv, tri_island, result_faces, face, bary, points, centres, homes) -> np.ndarray:
     """(r, 3, 2) UVs of the result's corners for one UV map (see the module docstring)."""
-    from mathutils.geometry import closest_point_on_tri
-
     per_vertex = interpolate(uv, surface.tri_loops, face, bary)
     corner_uv = per_vertex[result_faces]  # (r, 3, 2)
     corner_tri = np.where(face >= 0, face, 0)[result_faces]
@@ -298,52 +332,39 @@ def _corner_uvs(surface, uv, tri_island, result_faces, face, bary, points, centr
     edge_uv = np.linalg.norm(corner_uv - corner_uv[:, [1, 2, 0]], axis=2)
     allowed = STRAY_STRETCH * scale[corner_tri].max(1)[:, None] * edge_3d + 10 * UV_TOLERANCE
     stray_face |= (edge_uv > allowed).any(axis=1)
-    if not stray_face.any():
-        return corner_uv
-    offsets, neighbours = uv_adjacency(surface, uv)
     todo = np.flatnonzero(stray_face)
+    if len(todo) == 0:
+        return corner_uv
     missing = [r for r in todo.tolist() if r not in homes]
     if missing:
         tri, _ = _Nearest(surface, np.arange(len(surface.tri_verts))).query(centres[missing])
         homes.update(zip(missing, tri.tolist()))
+    home = np.array([homes[r] for r in todo.tolist()], dtype=np.int64)
+    # the home triangle's UV chart nearby: rings of UV-continuous neighbours, padded with the home itself
+    adj = uv_adjacency(surface, uv)
+    rings, front = [home[:, None]], home[:, None]
+    for _ in range(PATCH_RINGS):
+        front = adj[front].reshape(len(home), -1)
+        front = np.where(front >= 0, front, home[:, None])
+        rings.append(front)
+    patch = np.concatenate(rings, axis=1)  # (s, K)
+    own = corner_tri[todo]  # (s, 3)
+    stray = ~(patch[:, :, None] == own[:, None, :]).any(axis=1)  # corners whose triangle is off the chart
+    rows, cols = np.nonzero(stray)
+    if len(rows) == 0:
+        return corner_uv
+    cand = patch[rows]  # (q, K)
     pos = surface.positions
-    for r in todo.tolist():
-        home = homes[r]
-        radius = 1.5 * np.linalg.norm(p[r] - centres[r], axis=1).max() + 1e-9  # every corner's nearest point is inside
-        patch = _patch(home, offsets, neighbours, pos[surface.tri_verts], centres[r], radius)
-        for k in range(3):
-            if corner_tri[r, k] in patch:
-                continue
-            best, best_d, best_w = home, np.inf, None
-            target = p[r, k].tolist()
-            for t in patch:
-                a, b, c = pos[surface.tri_verts[t]]
-                hit = np.array(closest_point_on_tri(target, a.tolist(), b.tolist(), c.tolist()))
-                d = float(np.sum((hit - p[r, k]) ** 2))
-                if d < best_d:
-                    best, best_d, best_w = t, d, hit
-            tv = pos[surface.tri_verts[best]]
-            w = _barycentric(best_w[None], tv[0:1], tv[1:2], tv[2:3])[0]
-            corner_uv[r, k] = w @ uv[surface.tri_loops[best]].astype(np.float64)
+    tv = pos[surface.tri_verts[cand]]  # (q, K, 3, 3)
+    target = p[todo[rows], cols][:, None, :]
+    hit = closest_on_triangles(np.broadcast_to(target, tv[:, :, 0].shape), tv[:, :, 0], tv[:, :, 1], tv[:, :, 2])
+    best = np.argmin(((hit - target) ** 2).sum(-1), axis=1)
+    pick = np.arange(len(rows))
+    tri = cand[pick, best]
+    tri_v = tv[pick, best]
+    weights = _barycentric(hit[pick, best], tri_v[:, 0], tri_v[:, 1], tri_v[:, 2])
+    corner_uv[todo[rows], cols] = np.einsum("ij,ijk->ik", weights, uv[surface.tri_loops[tri]].astype(np.float64))
     return corner_uv
-
-
-def _patch(home: int, offsets, neighbours, tri_points, centre, radius) -> set:
-    """Source triangles reachable from `home` across UV-continuous edges and within `radius` of `centre`."""
-    seen, front = {home}, [home]
-    while front:
-        nxt = []
-        for t in front:
-            for n in neighbours[offsets[t]:offsets[t + 1]].tolist():
-                mid = tri_points[n].mean(axis=0)
-                reach = np.linalg.norm(tri_points[n] - mid, axis=1).max()
-                if n not in seen and np.linalg.norm(mid - centre) - reach <= radius:
-                    seen.add(n)
-                    nxt.append(n)
-        front = nxt
-        if len(seen) > 2000:
-            break
-    return seen
 
 
 def _mark_seams(mesh: bpy.types.Mesh, corner_uv: np.ndarray) -> None:
