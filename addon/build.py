@@ -2,11 +2,12 @@
 
     python addon/build.py [--dist DIR] [--cache DIR] [--offline] [--blender-ext PATH]
 
-Steps: stage a copy of addon/isoclay_blender in build/stage/isoclay_blender; copy solver/isoclay/wire.py
-and client.py into it verbatim; download the pyzmq and msgpack wheels for Blender's Python 3.11
-on each platform into a cache outside git (build/wheels); list them in the staged manifest; run
-Blender's own extension builder (blender_ext.py, found inside the bpy package of .venv-blender,
-runs under plain Python) with `build --split-platforms`, then `validate` on every zip.
+Steps: stage a copy of addon/isoclay_blender in build/stage/isoclay_blender; copy solver/isoclay/wire.py,
+client.py and summaries.py into it verbatim; download the pyzmq and msgpack wheels for Blender's
+Python 3.11 on each platform into a cache outside git (build/wheels); list them in the staged
+manifest; run Blender's own extension builder (blender_ext.py, found inside the bpy package of the
+interpreter running this script, else of this checkout's .venv-blender; it runs under plain
+Python) with `build --split-platforms`, then `validate` on every zip.
 Prints a JSON summary. Exit code 0 on success, 1 with a one-line message otherwise.
 """
 

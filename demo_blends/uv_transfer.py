@@ -3,13 +3,16 @@ installed add-on against a real solver, measured, and rendered with a checker te
 
     .venv-blender/bin/python demo_blends/uv_transfer.py --out demo_out/uv [--quick]
 
-Each prop gets UVs from Blender's Smart UV Project (many islands, so many seams to cross), then the
-edit the demo gives it, rebuilt (not keep topology). Per prop, printed as JSON:
+Each prop gets UVs from Blender's Smart UV Project (many islands, so many seams to cross) or, for the
+scanned stone, a spherical projection (one island cut along a seam, the way a pebble is usually
+mapped), then the edit the demo gives it, rebuilt (not keep topology). Per prop, printed as JSON:
 - uv_match: share of result corners whose UV is within 0.01 of the source's UV at the closest
   source point (mathutils BVHTree; the correspondence smoothing and rebuilding promise),
-- stretch_source / stretch_result: area-weighted L2 texture stretch (Sander et al. 2001, "Texture
-  mapping progressive meshes"), each mesh normalised to equal surface and UV area; 1.0 is no
-  distortion; the ratio says how much the carried UVs distort beyond the artist's own unwrap,
+- stretch_median_* / stretch_p95_*: area-weighted median and 95th percentile of the per-face L2
+  texture stretch (Sander et al. 2001, "Texture mapping progressive meshes"), each mesh normalised
+  to equal surface and UV area; 1.0 is no distortion; source against result says how much the
+  carried UVs distort beyond the artist's own unwrap; area_beyond_source_p95: share of the result's
+  surface stretched more than the source's 95th percentile,
 - flipped: share of result faces whose UV triangle is mirrored against the source's orientation,
 - transfer_s: time the add-on spent building the result object (the carrying included).
 Writes <out>/uv_transfer.png: source | result per prop, checker-textured through its first UV map.
@@ -32,11 +35,11 @@ import numpy as np
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
-EDITS = {  # prop -> (operator, scene settings); the demo's own edits, rebuilt
-    "stone": ("smooth_shape", {"smooth_strength": 0.006}),
-    "anvil": ("sharpen_shape", {"sharpen_amount": 0.6}),
-    "jug": ("remesh_shape", {}),
-    "hook": ("remesh_shape", {}),
+EDITS = {  # prop -> (unwrap, operator, scene settings); the demo's own edits, rebuilt
+    "stone": ("sphere", "smooth_shape", {"smooth_strength": 0.006}),
+    "anvil": ("smart", "sharpen_shape", {"sharpen_amount": 0.6}),
+    "jug": ("smart", "remesh_shape", {}),
+    "hook": ("smart", "remesh_shape", {}),
 }
 RENDERED = ("jug", "stone")
 
@@ -76,13 +79,16 @@ def triangles(mesh):
     return _array(lt, "vertices", 3, np.int32), _array(lt, "loops", 3, np.int32)
 
 
-def texture_stretch(co, uv, tris, loops) -> float:
-    """Area-weighted L2 stretch of the map UV -> surface (Sander et al. 2001), both areas normalised to 1."""
+def texture_stretch(co, uv, tris, loops) -> tuple[np.ndarray, np.ndarray]:
+    """Per-triangle L2 stretch of the map UV -> surface (Sander et al. 2001) with surface and UV areas
+    normalised to equal totals, and the triangles' surface areas (triangles with no UV area get inf)."""
     p, q = co[tris].astype(np.float64), uv[loops].astype(np.float64)
     area3 = 0.5 * np.linalg.norm(np.cross(p[:, 1] - p[:, 0], p[:, 2] - p[:, 0]), axis=1)
     d1, d2 = q[:, 1] - q[:, 0], q[:, 2] - q[:, 0]
     area2 = 0.5 * (d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
     ok = np.abs(area2) > 1e-14
+    out = np.full(len(area3), np.inf)
+    weights = area3.copy()
     p, q, area3, area2 = p[ok], q[ok], area3[ok], area2[ok]
     s1, s2, s3 = q[:, 0], q[:, 1], q[:, 2]
     a = 2 * area2
@@ -92,7 +98,14 @@ def texture_stretch(co, uv, tris, loops) -> float:
           + p[:, 2] * (s2[:, 0] - s1[:, 0])[:, None]) / a[:, None]
     per = np.sqrt(((ss * ss).sum(1) + (st * st).sum(1)) / 2)
     scale = math.sqrt(np.abs(area2).sum() / area3.sum())  # equal surface and UV area
-    return float(math.sqrt((per ** 2 * area3).sum() / area3.sum()) * scale)
+    out[ok] = per * scale
+    return out, weights
+
+
+def weighted_percentile(values, weights, q) -> float:
+    order = np.argsort(values)
+    cum = np.cumsum(weights[order])
+    return float(values[order][np.searchsorted(cum, q / 100.0 * cum[-1])])
 
 
 def measure(source, result) -> dict:
@@ -124,11 +137,35 @@ def measure(source, result) -> dict:
     d1, d2 = q[:, 1] - q[:, 0], q[:, 2] - q[:, 0]
     sign = np.sign(d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
     flipped = (sign * orient[r_tri[:, 0]]) < 0
-    stretch_src = texture_stretch(s_co, s_uv, s_tri, s_loops)
-    stretch_res = texture_stretch(r_co, r_uv, r_tri, r_loops)
+    src, src_w = texture_stretch(s_co, s_uv, s_tri, s_loops)
+    res, res_w = texture_stretch(r_co, r_uv, r_tri, r_loops)
+    worst = weighted_percentile(src, src_w, 95)
     return {"source_vertices": len(s_co), "result_vertices": len(r_co), "uv_match": float((err <= 0.01).mean()),
-            "stretch_source": stretch_src, "stretch_result": stretch_res, "stretch_ratio": stretch_res / stretch_src,
-            "flipped": float(flipped.mean()), "islands_seams": int(_array(res.edges, "use_seam", 1, bool).sum())}
+            "stretch_median_source": weighted_percentile(src, src_w, 50),
+            "stretch_median_result": weighted_percentile(res, res_w, 50),
+            "stretch_p95_source": worst, "stretch_p95_result": weighted_percentile(res, res_w, 95),
+            "area_beyond_source_p95": float(res_w[res > worst].sum() / res_w.sum()),
+            "flipped": float(flipped.mean()), "seams": int(_array(res.edges, "use_seam", 1, bool).sum())}
+
+
+def sphere_project(obj) -> None:
+    """A UV map by spherical projection about the bounding-box centre; faces across the seam are unwrapped."""
+    mesh = obj.data
+    co = _array(mesh.vertices, "co", 3).astype(np.float64)
+    d = co - (co.min(0) + co.max(0)) / 2
+    u = (np.arctan2(d[:, 1], d[:, 0]) / (2 * math.pi)) % 1.0
+    v = np.arccos(np.clip(d[:, 2] / np.maximum(np.linalg.norm(d, axis=1), 1e-12), -1, 1)) / math.pi
+    corner = _array(mesh.loops, "vertex_index", 1, np.int32)
+    start = _array(mesh.polygons, "loop_start", 1, np.int32)
+    total = _array(mesh.polygons, "loop_total", 1, np.int32)
+    poly = np.repeat(np.arange(len(start)), total)
+    cu = u[corner].copy()
+    span_max = np.maximum.reduceat(cu, start)
+    span_min = np.minimum.reduceat(cu, start)
+    wrap = (span_max - span_min > 0.5)[poly]
+    cu[wrap & (cu < 0.5)] += 1.0
+    layer = mesh.uv_layers.new(name="UVMap")
+    layer.uv.foreach_set("vector", np.column_stack([cu, 1.0 - v[corner]]).astype(np.float32).ravel())
 
 
 def checker_material():
@@ -236,16 +273,19 @@ def main(argv=None) -> int:
                 timed["s"] = time.perf_counter() - t
 
         addon.results.create_result_object = timed_create
-        for name, (op, values) in EDITS.items():
+        for name, (unwrap, op, values) in EDITS.items():
             source = bpy.data.objects[name]
             for other in bpy.context.view_layer.objects.selected:
                 other.select_set(False)
             source.select_set(True)
             bpy.context.view_layer.objects.active = source
-            bpy.ops.object.mode_set(mode='EDIT')
-            bpy.ops.mesh.select_all(action='SELECT')
-            bpy.ops.uv.smart_project(angle_limit=math.radians(66.0), island_margin=0.02)
-            bpy.ops.object.mode_set(mode='OBJECT')
+            if unwrap == "sphere":
+                sphere_project(source)
+            else:
+                bpy.ops.object.mode_set(mode='EDIT')
+                bpy.ops.mesh.select_all(action='SELECT')
+                bpy.ops.uv.smart_project(angle_limit=math.radians(66.0), island_margin=0.02)
+                bpy.ops.object.mode_set(mode='OBJECT')
             for key, value in values.items():
                 setattr(settings, key, value)
             t = time.perf_counter()
@@ -256,7 +296,7 @@ def main(argv=None) -> int:
             if name in RENDERED:
                 pairs.append((source, result))
         picture = render(pairs, out, (360, 300) if args.quick else (480, 400), 8 if args.quick else 24)
-        print(json.dumps({"props": figures, "picture": str(picture)}, indent=1))
+        sys.stdout.write("\n" + json.dumps({"props": figures, "picture": str(picture)}, indent=1) + "\n")
     finally:
         addon_link = sys.modules.get("bl_ext.user_default.isoclay")
         if addon_link is not None:

@@ -162,8 +162,8 @@ class _EditOperator:
         runtime.running, runtime.task, runtime.stage, runtime.progress = True, self.task, "starting", 0.0
         runtime.last_error = ""
         runtime.message = describe_edit(self.task, params)
+        runtime.notice = notice
         if notice:
-            runtime.notice = notice
             self.report({'INFO'}, notice)
         _Active.job = job
         return job.start()

@@ -317,6 +317,15 @@ STRAY_STRETCH = 3.0
 #: stray corners (3 + 9 + 27 + 81 candidates): enough while result faces are no larger than a few
 #: source triangles (the usual case: a rebuilt surface is finer than or as fine as its source).
 PATCH_RINGS = 4
+#: Of those, the ones whose bounding spheres come nearest get an exact closest-point query.
+EXACT_CANDIDATES = 8
+
+
+def _tri_centres(surface: SourceSurface) -> tuple[np.ndarray, np.ndarray]:
+    """(m, 3) centroids and (m,) bounding radii of the source triangles."""
+    tv = surface.positions[surface.tri_verts]
+    mid = tv.mean(axis=1)
+    return mid, np.linalg.norm(tv - mid[:, None], axis=2).max(axis=1)
 
 
 def _corner_uvs(surface, uv, tri_island, result_faces, face, bary, points, centres, homes) -> np.ndarray:
@@ -355,8 +364,13 @@ def _corner_uvs(surface, uv, tri_island, result_faces, face, bary, points, centr
         return corner_uv
     cand = patch[rows]  # (q, K)
     pos = surface.positions
-    tv = pos[surface.tri_verts[cand]]  # (q, K, 3, 3)
     target = p[todo[rows], cols][:, None, :]
+    # exact distances only for the few candidates whose bounding spheres come nearest (a lower bound)
+    mid, reach = _tri_centres(surface)
+    bound = np.linalg.norm(mid[cand] - target, axis=2) - reach[cand]
+    keep = min(EXACT_CANDIDATES, cand.shape[1])
+    cand = np.take_along_axis(cand, np.argpartition(bound, keep - 1, axis=1)[:, :keep], axis=1)
+    tv = pos[surface.tri_verts[cand]]  # (q, keep, 3, 3)
     hit = closest_on_triangles(np.broadcast_to(target, tv[:, :, 0].shape), tv[:, :, 0], tv[:, :, 1], tv[:, :, 2])
     best = np.argmin(((hit - target) ** 2).sum(-1), axis=1)
     pick = np.arange(len(rows))
