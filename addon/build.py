@@ -3,7 +3,7 @@
     python addon/build.py [--dist DIR] [--cache DIR] [--offline] [--blender-ext PATH]
 
 Steps: stage a copy of addon/isoclay_blender in build/stage/isoclay_blender; copy solver/isoclay/wire.py,
-client.py and summaries.py into it verbatim; download the pyzmq and msgpack wheels for Blender's
+client.py, summaries.py and estimates.py into it verbatim; download the pyzmq and msgpack wheels for Blender's
 Python 3.11 on each platform into a cache outside git (build/wheels); list them in the staged
 manifest; run Blender's own extension builder (blender_ext.py, found inside the bpy package of the
 interpreter running this script, else of this checkout's .venv-blender; it runs under plain
@@ -25,7 +25,7 @@ import sys
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SOURCE = os.path.join(ROOT, "addon", "isoclay_blender")
 SOLVER = os.path.join(ROOT, "solver", "isoclay")
-COPIED = ("wire.py", "client.py", "summaries.py")  # copied verbatim; tests/test_addon_copies.py checks them
+COPIED = ("wire.py", "client.py", "summaries.py", "estimates.py")  # copied verbatim; tests/test_addon_copies.py checks them
 
 PYZMQ = "pyzmq==27.3.0"
 MSGPACK = "msgpack==1.2.4"

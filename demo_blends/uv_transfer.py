@@ -137,6 +137,7 @@ def measure(source, result) -> dict:
     d1, d2 = q[:, 1] - q[:, 0], q[:, 2] - q[:, 0]
     sign = np.sign(d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0])
     flipped = (sign * orient[r_tri[:, 0]]) < 0
+    seams = int(_array(res.edges, "use_seam", 1, bool).sum())
     src, src_w = texture_stretch(s_co, s_uv, s_tri, s_loops)
     res, res_w = texture_stretch(r_co, r_uv, r_tri, r_loops)
     worst = weighted_percentile(src, src_w, 95)
@@ -145,7 +146,7 @@ def measure(source, result) -> dict:
             "stretch_median_result": weighted_percentile(res, res_w, 50),
             "stretch_p95_source": worst, "stretch_p95_result": weighted_percentile(res, res_w, 95),
             "area_beyond_source_p95": float(res_w[res > worst].sum() / res_w.sum()),
-            "flipped": float(flipped.mean()), "seams": int(_array(res.edges, "use_seam", 1, bool).sum())}
+            "flipped": float(flipped.mean()), "seams": seams}
 
 
 def sphere_project(obj) -> None:

@@ -1,7 +1,7 @@
 """How long and how much memory an edit will roughly take, before it is sent. No bpy, no torch.
 
 Memory is the solver's own pre-flight figure (isoclay.estimates.estimate_memory, the one the
-service refuses jobs by; tests/test_addon_limits.py checks this copy gives the same bytes). Time is
+service refuses jobs by, bundled verbatim by the build). Time is
 a rough fit of measured runs (`isoclay remesh` of icospheres, one thread, this 2-core machine):
 fitting took 3.05 / 5.22 / 9.05 s for 20k / 82k / 328k faces at field detail 128, extraction
 2.2-2.8 s at surface detail 256, the correspondence 0.3-1.0 s; the task itself adds its own
@@ -10,8 +10,9 @@ fitting took 3.05 / 5.22 / 9.05 s for 20k / 82k / 328k faces at field detail 128
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
+
+from .estimates import estimate_memory  # copied verbatim from solver/isoclay/estimates.py by addon/build.py
 
 #: Fit: seconds at field detail 128 = FIT_BASE_S + FIT_PER_FACE_S x faces (least squares on the runs above).
 FIT_BASE_S = 2.7
@@ -35,17 +36,6 @@ class Estimate:
     @property
     def large(self) -> bool:
         return self.seconds > NOTE_SECONDS or self.bytes > NOTE_BYTES
-
-
-def estimate_memory(task: str, n_vertices: int, n_faces: int, params: dict) -> int:
-    """Rough peak bytes of a solver worker: the same formula as isoclay.estimates.estimate_memory."""
-    mesh = 3 * (24 * n_vertices + 24 * n_faces)
-    if task == "echo":
-        return (200 << 20) + mesh
-    fit = params.get("fit") if isinstance(params.get("fit"), dict) else {}
-    resolution = fit.get("resolution", 128)
-    resolution = int(resolution) if isinstance(resolution, (int, float)) and math.isfinite(resolution) else 128
-    return (800 << 20) + 40 * 4 * (resolution + 4) ** 3 + 300 * (n_vertices + n_faces) + mesh
 
 
 def estimate(task: str, n_vertices: int, n_faces: int, field_detail: int = 128, surface_detail: int = 256) -> Estimate:

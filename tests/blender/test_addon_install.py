@@ -21,7 +21,7 @@ def test_zip_holds_wheels_and_solver_copies(addon_zip):
     with zipfile.ZipFile(addon_zip) as z:
         names = set(z.namelist())
         manifest = tomllib.loads(z.read("blender_manifest.toml").decode())
-        for name in ("wire.py", "client.py", "summaries.py"):
+        for name in ("wire.py", "client.py", "summaries.py", "estimates.py"):
             with open(os.path.join(ROOT, "solver", "isoclay", name), "rb") as f:
                 assert z.read(name) == f.read(), f"{name} in the zip differs from solver/isoclay/{name}"
     # the builder records the per-platform selection in [build.generated] (Blender's blender_ext.py)
@@ -148,7 +148,7 @@ def test_build_works_from_another_checkout_with_this_interpreter(tmp_path, addon
     checkout = tmp_path / "elsewhere"
     shutil.copytree(os.path.join(ROOT, "addon"), checkout / "addon", ignore=shutil.ignore_patterns("__pycache__"))
     (checkout / "solver" / "isoclay").mkdir(parents=True)
-    for name in ("wire.py", "client.py", "summaries.py"):
+    for name in ("wire.py", "client.py", "summaries.py", "estimates.py"):
         shutil.copyfile(os.path.join(ROOT, "solver", "isoclay", name), checkout / "solver" / "isoclay" / name)
     done = subprocess.run([sys.executable, str(checkout / "addon" / "build.py"), "--dist", str(tmp_path / "dist"),
                            "--cache", os.path.join(ROOT, "build", "wheels"), "--offline"],
