@@ -122,7 +122,6 @@ def main(conn, spec: dict) -> None:
 def run_job(spec: dict, channel: _Channel) -> dict:
     from ..errors import Cancelled
     from ..history.blobs import BlobStore, pack_mesh, unpack_mesh
-
     from .handle_groups import echo_report, restore_points
 
     blobs = BlobStore(spec["blob_root"])
