@@ -2,11 +2,12 @@
 
     python addon/build.py [--dist DIR] [--cache DIR] [--offline] [--blender-ext PATH]
 
-Steps: stage a copy of addon/isoclay_blender in build/stage/isoclay_blender; copy solver/isoclay/wire.py
-and client.py into it verbatim; download the pyzmq and msgpack wheels for Blender's Python 3.11
-on each platform into a cache outside git (build/wheels); list them in the staged manifest; run
-Blender's own extension builder (blender_ext.py, found inside the bpy package of .venv-blender,
-runs under plain Python) with `build --split-platforms`, then `validate` on every zip.
+Steps: stage a copy of addon/isoclay_blender in build/stage/isoclay_blender; copy solver/isoclay/wire.py,
+client.py, summaries.py and estimates.py into it verbatim; download the pyzmq and msgpack wheels for Blender's
+Python 3.11 on each platform into a cache outside git (build/wheels); list them in the staged
+manifest; run Blender's own extension builder (blender_ext.py, found inside the bpy package of the
+interpreter running this script, else of this checkout's .venv-blender; it runs under plain
+Python) with `build --split-platforms`, then `validate` on every zip.
 Prints a JSON summary. Exit code 0 on success, 1 with a one-line message otherwise.
 """
 
@@ -24,7 +25,7 @@ import sys
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 SOURCE = os.path.join(ROOT, "addon", "isoclay_blender")
 SOLVER = os.path.join(ROOT, "solver", "isoclay")
-COPIED = ("wire.py", "client.py")  # copied verbatim; tests/test_addon_copies.py checks them
+COPIED = ("wire.py", "client.py", "summaries.py", "estimates.py")  # copied verbatim; tests/test_addon_copies.py checks them
 
 PYZMQ = "pyzmq==27.3.0"
 MSGPACK = "msgpack==1.2.4"
@@ -44,13 +45,27 @@ class BuildError(Exception):
     """The build cannot go on; the message says what to fix."""
 
 
+BUILDER = os.path.join("scripts", "addons_core", "bl_pkg", "cli", "blender_ext.py")
+
+
 def find_blender_ext() -> str:
-    pattern = os.path.join(ROOT, ".venv-blender", "lib", "python3*", "site-packages", "bpy", "*", "scripts",
-                           "addons_core", "bl_pkg", "cli", "blender_ext.py")
-    found = sorted(glob.glob(pattern))
-    if not found:
-        raise BuildError("blender_ext.py not found in .venv-blender: create it (pip install bpy==5.0.1) or pass --blender-ext")
-    return found[-1]
+    """Blender's extension builder, from the bpy package of the interpreter running this script
+    (any checkout, any venv), else from this checkout's .venv-blender."""
+    import importlib.util
+
+    roots = []
+    spec = importlib.util.find_spec("bpy")
+    if spec is not None:
+        roots += [os.path.dirname(spec.origin)] if spec.origin else list(spec.submodule_search_locations or ())
+    roots += glob.glob(os.path.join(sys.prefix, "lib", "python3*", "site-packages", "bpy"))
+    roots += glob.glob(os.path.join(sys.prefix, "Lib", "site-packages", "bpy"))
+    roots += glob.glob(os.path.join(ROOT, ".venv-blender", "lib", "python3*", "site-packages", "bpy"))
+    for root in roots:
+        found = sorted(glob.glob(os.path.join(root, "*", BUILDER)))
+        if found:
+            return found[-1]
+    raise BuildError(f"blender_ext.py not found: run this with a Python that has bpy installed (pip install "
+                     f"bpy==5.0.1; this is {sys.executable}) or pass --blender-ext")
 
 
 def _wheel_matches(filename: str, requirement: str, platform: str) -> bool:

@@ -34,7 +34,7 @@ def staged(tmp_path):
 
 
 def test_staged_copies_equal_the_solver_files(staged):
-    for name in ("wire.py", "client.py"):
+    for name in ("wire.py", "client.py", "summaries.py", "estimates.py"):
         with open(os.path.join(ROOT, "solver", "isoclay", name), "rb") as original:
             assert (staged / name).read_bytes() == original.read(), f"add-on copy of {name} differs"
 
@@ -48,7 +48,7 @@ def test_built_zip_copies_equal_the_solver_files():
         pytest.skip("no built zips in dist/: run `python addon/build.py` (tests/blender builds its own)")
     for path in zips:
         with zipfile.ZipFile(path) as z:
-            for name in ("wire.py", "client.py"):
+            for name in ("wire.py", "client.py", "summaries.py", "estimates.py"):
                 with open(os.path.join(ROOT, "solver", "isoclay", name), "rb") as original:
                     assert z.read(name) == original.read(), f"{name} in {os.path.basename(path)} is stale: rebuild"
 
@@ -65,7 +65,8 @@ def test_addon_client_imports_without_bpy_or_torch(staged):
         package = types.ModuleType("addon_copy")
         package.__path__ = [{str(staged)!r}]
         sys.modules["addon_copy"] = package
-        for name in ("wire", "client", "jobs", "solver_process"):
+        for name in ("wire", "client", "jobs", "solver_process", "summaries", "estimates", "messages", "preflight", "limits",
+                     "colours"):
             importlib.import_module("addon_copy." + name)
         client = sys.modules["addon_copy.client"]
         assert issubclass(client.SolverUnreachable, client.ClientError)

@@ -26,6 +26,12 @@ def _tick():
 
 
 @persistent
+def _on_undo_redo(*_args):
+    # an undo to a state before an edit wrote the source's history key must not cut it off its history
+    properties.restore_source_keys()
+
+
+@persistent
 def _on_load_pre(*_args):
     # the objects a running edit refers to are about to disappear: stop it (the solver keeps nothing half-done)
     job = operators._Active.job
@@ -40,6 +46,8 @@ def register():
             bpy.utils.register_class(cls)
     properties.register_properties()
     bpy.app.handlers.load_pre.append(_on_load_pre)
+    for handlers in (bpy.app.handlers.undo_post, bpy.app.handlers.redo_post):
+        handlers.append(_on_undo_redo)
     if not bpy.app.timers.is_registered(_tick):
         bpy.app.timers.register(_tick, first_interval=_TICK_S, persistent=True)
 
@@ -49,6 +57,10 @@ def unregister():
         bpy.app.timers.unregister(_tick)
     if _on_load_pre in bpy.app.handlers.load_pre:
         bpy.app.handlers.load_pre.remove(_on_load_pre)
+    for handlers in (bpy.app.handlers.undo_post, bpy.app.handlers.redo_post):
+        if _on_undo_redo in handlers:
+            handlers.remove(_on_undo_redo)
+    panels.free_swatches()
     job = operators._Active.job
     if job is not None:
         job.cancel()

@@ -202,48 +202,54 @@ def vertex_empties(obj: bpy.types.Object) -> dict[int, bpy.types.Object]:
     return found
 
 
+def _per_vertex_targets(obj, groups, local, m_obj):
+    """(idx (k,), handles (k, 3), targets (k, 3)) world units of the vertices with their own empty;
+    an empty left on its vertex (up to float32 storage) holds that vertex exactly still."""
+    per_vertex = {i: e for i, e in vertex_empties(obj).items() if 0 <= i < len(local) and groups[i] > 0}
+    idx = np.array(sorted(per_vertex), dtype=np.int64)
+    handle = to_world(local[idx], m_obj)
+    target = np.array([list(per_vertex[i].matrix_world.translation) for i in idx], dtype=np.float64).reshape(-1, 3)
+    still = np.linalg.norm(target - handle, axis=1) <= 1e-6 * np.maximum(1.0, np.linalg.norm(handle, axis=1))
+    target[still] = handle[still]
+    return idx, handle, target
+
+
+def _group_motion(obj, groups, group: int) -> tuple[np.ndarray, bpy.types.Object]:
+    """(object-space motion (4, 4) of group's empty since its rest pose, exactly the identity when
+    untouched; the empty). Raises HandleError when the group lost its empty."""
+    empty = target_empties(obj).get(int(group))
+    if empty is None:
+        raise HandleError(f"handle {group} of {obj.name!r} has lost its target empty: clear the handles and add them again")
+    rest = np.array(empty.isoclay.target_rest, dtype=np.float64).reshape(4, 4)
+    motion = _object_space(obj, empty) @ np.linalg.inv(rest)
+    return (np.eye(4) if np.allclose(motion, np.eye(4), rtol=0.0, atol=1e-9) else motion), empty
+
+
+def _marked(obj):
+    groups = handle_groups(obj.data)
+    marked = np.flatnonzero(groups)
+    if marked.size == 0:
+        raise HandleError(f"{obj.name!r} has no handles: select vertices in Edit Mode and add a handle first")
+    return groups, marked, read_positions(obj.data).astype(np.float64), matrix_to_numpy(obj.matrix_world)
+
+
 def handles_and_targets(obj: bpy.types.Object) -> tuple[np.ndarray, np.ndarray]:
     """(k, 3) handle positions and (k, 3) targets in world units, from the original (unmodified) mesh.
 
     Vertices with their own empty (see vertex_empties) come first, in vertex order; then each
     handle group in group order. Raises HandleError when a group has lost its empty.
     """
-    mesh = obj.data
-    groups = handle_groups(mesh)
-    marked = np.flatnonzero(groups)
-    if marked.size == 0:
-        raise HandleError(f"{obj.name!r} has no handles: select vertices in Edit Mode and add a handle first")
-    m_obj = matrix_to_numpy(obj.matrix_world)
-    local = read_positions(mesh).astype(np.float64)
-    handles_out, targets_out = [], []
-
-    per_vertex = {i: e for i, e in vertex_empties(obj).items() if 0 <= i < len(local) and groups[i] > 0}
-    if per_vertex:
-        idx = np.array(sorted(per_vertex), dtype=np.int64)
-        handle = to_world(local[idx], m_obj)
-        target = np.array([list(per_vertex[i].matrix_world.translation) for i in idx], dtype=np.float64)
-        # an empty left on its vertex (up to float32 storage) holds that vertex exactly still
-        still = np.linalg.norm(target - handle, axis=1) <= 1e-6 * np.maximum(1.0, np.linalg.norm(handle, axis=1))
-        target[still] = handle[still]
-        handles_out.append(handle)
-        targets_out.append(target)
-        marked = marked[~np.isin(marked, idx)]
-
-    empties = target_empties(obj)
+    groups, marked, local, m_obj = _marked(obj)
+    idx, handle, target = _per_vertex_targets(obj, groups, local, m_obj)
+    handles_out, targets_out = [handle], [target]
+    marked = marked[~np.isin(marked, idx)]
     for group in np.unique(groups[marked]):
-        idx = marked[groups[marked] == group]
-        empty = empties.get(int(group))
-        if empty is None:
-            raise HandleError(f"handle {group} of {obj.name!r} has lost its target empty: clear the handles and add them again")
-        rest = np.array(empty.isoclay.target_rest, dtype=np.float64).reshape(4, 4)
-        motion = _object_space(obj, empty) @ np.linalg.inv(rest)
-        handle = to_world(local[idx], m_obj)
-        if np.allclose(motion, np.eye(4), rtol=0.0, atol=1e-9):
-            target = handle.copy()  # untouched empty: the handle stays exactly put
-        else:
-            target = to_world(local[idx] @ motion[:3, :3].T + motion[:3, 3], m_obj)
+        members = marked[groups[marked] == group]
+        motion, _ = _group_motion(obj, groups, group)
+        handle = to_world(local[members], m_obj)
+        moved = not np.array_equal(motion, np.eye(4))
+        targets_out.append(to_world(local[members] @ motion[:3, :3].T + motion[:3, 3], m_obj) if moved else handle.copy())
         handles_out.append(handle)
-        targets_out.append(target)
     return np.concatenate(handles_out), np.concatenate(targets_out)
 
 
@@ -268,3 +274,48 @@ def handle_summary(obj: bpy.types.Object) -> tuple[int, int, int]:
         target = np.array([list(per_vertex[i].matrix_world.translation) for i in idx])
         moved += int((np.linalg.norm(target - handle, axis=1) > 1e-6 * np.maximum(1.0, np.linalg.norm(handle, axis=1))).sum())
     return len(ids) + len(per_vertex), int((groups > 0).sum()), moved
+
+
+#: Handle groups one request can carry: the wire allows 64 array frames (wire.MAX_ARRAYS), two of
+#: which are the mesh.
+MAX_GROUPS = 62
+
+
+def handle_groups_world(obj: bpy.types.Object) -> list[dict]:
+    """The object's handles as groups for the solver: [{"points": (k, 3) float64 world, "transform": (4, 4)
+    world motion of the group's target, "name": str}, ...] (CONTRACTS 1, group form).
+
+    A group with a target empty moves by T = M_obj @ L_now @ inverse(L_rest) @ inverse(M_obj), so
+    target = T @ point; an untouched empty gives exactly the identity. Vertices with their own empty
+    (vertex_empties) become groups too, one per distinct move (all held ones in one group). Raises
+    HandleError when there are no handles, a group lost its empty, or there are too many groups.
+    """
+    groups, marked, local, m_obj = _marked(obj)
+    out = []
+    idx, handle, target = _per_vertex_targets(obj, groups, local, m_obj)
+    if len(idx):
+        moves, which = np.unique(target - handle, axis=0, return_inverse=True)
+        which = which.ravel()
+        for k, shift in enumerate(moves):
+            transform = np.eye(4)
+            transform[:3, 3] = shift
+            name = "held vertices" if not shift.any() else f"vertex {int(idx[which == k][0])}"
+            out.append({"points": handle[which == k], "transform": transform, "name": name})
+    marked = marked[~np.isin(marked, idx)]
+    inv_obj = np.linalg.inv(m_obj)
+    for group in np.unique(groups[marked]):
+        members = marked[groups[marked] == group]
+        motion, empty = _group_motion(obj, groups, group)
+        transform = np.eye(4) if np.array_equal(motion, np.eye(4)) else m_obj @ motion @ inv_obj
+        out.append({"points": to_world(local[members], m_obj), "transform": transform, "name": empty.name})
+    if len(out) > MAX_GROUPS:
+        raise HandleError(f"{obj.name!r} has {len(out)} handle groups; one edit takes at most {MAX_GROUPS}: "
+                          "clear some handles and group vertices that move together")
+    return out
+
+
+def deform_request(obj: bpy.types.Object) -> tuple[list[dict], dict[str, np.ndarray]]:
+    """(params["groups"], array frames {"handles:<i>": points}) for a deform of `obj` (see handle_groups_world)."""
+    groups = handle_groups_world(obj)
+    params = [{"transform": g["transform"].tolist(), "name": g["name"][:64]} for g in groups]
+    return params, {f"handles:{i}": np.ascontiguousarray(g["points"], dtype=np.float64) for i, g in enumerate(groups)}

@@ -41,8 +41,9 @@ def new_job_id() -> str:
     return uuid.uuid4().hex
 
 
-def explain(exc: BaseException, client_module) -> str:
+def explain(exc: BaseException, client_module, task: str = "edit") -> str:
     """One line for the artist: what went wrong and what to do."""
+    from .messages import for_artist
     from .solver_process import SolverSetupError
 
     if isinstance(exc, SolverSetupError):
@@ -51,6 +52,8 @@ def explain(exc: BaseException, client_module) -> str:
         return f"the solver refused the add-on's key ({exc}): restart the solver or pick its current connection file"
     if isinstance(exc, client_module.SolverUnreachable):
         return f"the solver stopped answering ({exc}): restart it from the add-on preferences, then run the edit again"
+    if isinstance(exc, client_module.RemoteError):
+        return for_artist(str(exc), task)
     if isinstance(exc, client_module.ClientError):
         return str(exc) or type(exc).__name__
     return f"unexpected {type(exc).__name__}: {exc}"
@@ -66,12 +69,13 @@ class EditJob:
     parent_node : history node to start from (no refit), or None
     solver_gone : optional callable returning why the solver is known to be dead ("" while it
         lives), so a crashed local solver is reported at once instead of after the client's timeouts
+    arrays : more array frames for the request, e.g. {"handles:<i>": (k, 3) float64} of a deform's groups
     """
 
     def __init__(self, connect: Callable, client_module, task: str, params: dict, vertices: np.ndarray,
                  faces: np.ndarray, source_key: str, parent_node: str | None = None,
                  job_id: str | None = None, poll_interval_s: float = 0.1,
-                 solver_gone: Callable[[], str] | None = None):
+                 solver_gone: Callable[[], str] | None = None, arrays: dict | None = None):
         self.connect = connect
         self.client_module = client_module
         self.task = task
@@ -83,6 +87,7 @@ class EditJob:
         self.job_id = job_id or new_job_id()
         self.poll_interval_s = poll_interval_s
         self.solver_gone = solver_gone
+        self.arrays = dict(arrays or {})
         self.record: dict | None = None
         self.max_poll_block_s = 0.0
         self._snapshot = JobSnapshot()
@@ -140,7 +145,7 @@ class EditJob:
         try:
             client = self.connect()
             client.submit(self.job_id, self.task, self.params, self.vertices, self.faces,
-                          self.source_key, parent_node=self.parent_node)
+                          self.source_key, parent_node=self.parent_node, arrays=self.arrays or None)
             self._update(state=QUEUED, stage="queued")
             cancel_sent = False
             while True:
@@ -171,9 +176,11 @@ class EditJob:
             elif state == INTERRUPTED:
                 self._update(state=INTERRUPTED, error="the solver restarted during this edit: run the edit again")
             else:
-                self._update(state=FAILED, error=str(status.get("error") or "the solver reported a failure without a reason"))
+                from .messages import for_artist
+
+                self._update(state=FAILED, error=for_artist(status.get("error") or "", self.task))
         except Exception as exc:  # every failure becomes a one-line report for the artist
-            self._update(state=FAILED, error=explain(exc, mod))
+            self._update(state=FAILED, error=explain(exc, mod, self.task))
         finally:
             _close_quietly(client)
 

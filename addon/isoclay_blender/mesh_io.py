@@ -10,6 +10,8 @@ import hashlib
 import bpy
 import numpy as np
 
+from .colours import ramp_srgb, srgb_to_linear
+
 
 class MeshReadError(Exception):
     """The object cannot be sent to the solver; the message names it and says what to do."""
@@ -27,19 +29,45 @@ def read_positions(mesh: bpy.types.Mesh) -> np.ndarray:
     return out.reshape(-1, 3)
 
 
-def read_triangles(mesh: bpy.types.Mesh) -> np.ndarray:
-    """(m, 3) int64 vertex indices; n-gons are split the way Blender draws them."""
+def read_corner_verts(mesh: bpy.types.Mesh) -> np.ndarray:
+    """(L,) int32 vertex of each face corner (loop)."""
+    buf = np.empty(len(mesh.loops), dtype=np.int32)
+    if len(buf):
+        mesh.attributes[".corner_vert"].data.foreach_get("value", buf)
+    return buf
+
+
+def read_corner_edges(mesh: bpy.types.Mesh) -> np.ndarray:
+    """(L,) int32 edge leaving each face corner (loop)."""
+    buf = np.empty(len(mesh.loops), dtype=np.int32)
+    if len(buf):
+        mesh.attributes[".corner_edge"].data.foreach_get("value", buf)
+    return buf
+
+
+def read_corner_triangles(mesh: bpy.types.Mesh) -> tuple[np.ndarray, np.ndarray]:
+    """(m, 3) int64 corners (loops) of each triangle and (m,) int64 face each came from.
+
+    n-gons are split the way Blender draws them (loop triangles); a mesh of triangles only is read
+    straight from its corners (face t has corners 3t..3t+2: Blender keeps faces in corner order).
+    """
     corners = len(mesh.loops)
     if len(mesh.polygons) == 0:
-        return np.zeros((0, 3), dtype=np.int64)
+        return np.zeros((0, 3), dtype=np.int64), np.zeros(0, dtype=np.int64)
     if corners == 3 * len(mesh.polygons):  # every face is a triangle (each face has >= 3 corners)
-        buf = np.empty(corners, dtype=np.int32)
-        mesh.attributes[".corner_vert"].data.foreach_get("value", buf)
-        return buf.reshape(-1, 3).astype(np.int64)
+        return np.arange(corners, dtype=np.int64).reshape(-1, 3), np.arange(len(mesh.polygons), dtype=np.int64)
     mesh.calc_loop_triangles()
-    buf = np.empty(len(mesh.loop_triangles) * 3, dtype=np.int32)
-    mesh.loop_triangles.foreach_get("vertices", buf)
-    return buf.reshape(-1, 3).astype(np.int64)
+    loops = np.empty(len(mesh.loop_triangles) * 3, dtype=np.int32)
+    mesh.loop_triangles.foreach_get("loops", loops)
+    poly = np.empty(len(mesh.loop_triangles), dtype=np.int32)
+    mesh.loop_triangles.foreach_get("polygon_index", poly)
+    return loops.reshape(-1, 3).astype(np.int64), poly.astype(np.int64)
+
+
+def read_triangles(mesh: bpy.types.Mesh) -> np.ndarray:
+    """(m, 3) int64 vertex indices; n-gons are split the way Blender draws them (read_corner_triangles)."""
+    loops, _ = read_corner_triangles(mesh)
+    return read_corner_verts(mesh)[loops].astype(np.int64)
 
 
 def to_world(local: np.ndarray, matrix: np.ndarray) -> np.ndarray:
@@ -121,16 +149,10 @@ def write_point_floats(mesh: bpy.types.Mesh, name: str, values: np.ndarray) -> N
     attr.data.foreach_set("value", np.ascontiguousarray(values, dtype=np.float32))
 
 
-# Colour ramp for distortion: dark blue (none) through teal and yellow to red (at the scale).
-# Stops chosen for legibility on grey clay in the viewport: common practice, no source.
-_RAMP_T = np.array([0.0, 0.35, 0.7, 1.0])
-_RAMP_RGB = np.array([[0.05, 0.10, 0.45], [0.05, 0.55, 0.55], [0.95, 0.85, 0.15], [0.85, 0.08, 0.05]])
-
-
 def distortion_colors(values: np.ndarray, scale: float) -> np.ndarray:
-    """(n, 4) float32 RGBA: 0 maps to the cold end, `scale` and above to the hot end."""
+    """(n, 4) float32 linear RGBA: 0 maps to the dark end, `scale` and above to the bright end."""
     t = np.clip(np.nan_to_num(values, nan=0.0) / max(scale, 1e-12), 0.0, 1.0)
-    rgb = np.stack([np.interp(t, _RAMP_T, _RAMP_RGB[:, c]) for c in range(3)], axis=1)
+    rgb = srgb_to_linear(ramp_srgb(t))
     return np.concatenate([rgb, np.ones((len(t), 1))], axis=1).astype(np.float32)
 
 
@@ -152,4 +174,5 @@ def write_distortion(mesh: bpy.types.Mesh, name: str, values: np.ndarray) -> flo
     colours = mesh.color_attributes.new(name, 'FLOAT_COLOR', 'POINT')
     colours.data.foreach_set("color", distortion_colors(values, scale).ravel())
     mesh[f"isoclay_{name}_scale"] = scale
+    mesh[f"isoclay_{name}_max"] = float(finite.max()) if finite.size else 0.0
     return scale

@@ -5,11 +5,15 @@ from __future__ import annotations
 import time
 
 import bpy
+import numpy as np
 from bpy.props import StringProperty
 
-from . import handles, jobs, mesh_io, results, solver_process
+from . import handles, jobs, mesh_io, preflight, results, solver_process
+from .messages import for_artist
 from .preferences import configure_link, get_prefs
-from .properties import ensure_source_key
+from .limits import MAX_RADIUS_REL, MAX_STRENGTH_REL
+from .properties import ensure_source_key, source_key_of
+from .summaries import describe_edit
 
 TIMER_STEP_S = 0.1
 
@@ -27,15 +31,24 @@ def _redraw(context) -> None:
             area.tag_redraw()
 
 
-def ensure_solver(context) -> None:
-    """Start the solver from the preferences when it is not configured yet; raises SolverSetupError."""
+def ensure_solver(context) -> str:
+    """Make sure a solver is there: start it from the preferences when it is not configured yet, and start a
+    local one that died again when "Start when needed" is on. Returns a one-line notice ("" if nothing
+    happened); raises SolverSetupError."""
     link = solver_process.LINK
-    if link.configured():
-        return
     prefs = get_prefs(context)
+    if link.died():
+        reason = link.local.failure_message()
+        if prefs.mode == "LOCAL" and prefs.start_automatically:
+            link.restart()
+            return f"{reason}; it was started again"
+        raise solver_process.SolverSetupError(f"{reason}: press Start in the Isoclay panel's Solver box")
+    if link.configured():
+        return ""
     if prefs.mode == "LOCAL" and not prefs.start_automatically:
-        raise solver_process.SolverSetupError("the local solver is not running: start it in the add-on preferences")
+        raise solver_process.SolverSetupError("the local solver is not running: press Start in the Isoclay panel's Solver box")
     configure_link(prefs)
+    return ""
 
 
 def connector(context, timeout_s: float | None = None, retries: int = 3):
@@ -64,16 +77,34 @@ def solver_gone() -> str:
     return ""
 
 
-def _summary_params(task: str, params: dict) -> str:
-    if task == "deform":
-        return f"{len(params.get('handles', []))} handle points, {params.get('stiffness')}"
-    if task == "smooth":
-        return f"strength {params.get('strength', 0):.4g}" + (", keep volume" if params.get("preserve_volume") else "")
-    if task == "sharpen":
-        return f"amount {params.get('amount', 0):.3g}"
-    if task == "remesh":
-        return f"surface detail {params.get('resolution', '')}"
+def _fail_poll(cls, reason: str) -> bool:
+    """Greyed out, with `reason` as the tooltip (poll_message_set): say what to select or do."""
+    cls.poll_message_set(reason)
+    return False
+
+
+def edit_unavailable(context) -> str:
+    """Why no edit can start now, or ""."""
+    obj = context.active_object
+    if obj is None:
+        return "Select a mesh object to reshape"
+    if obj.type != 'MESH':
+        return f"'{obj.name}' is a {obj.type.lower()}, not a mesh: select a mesh object"
+    if _Active.job is not None:
+        return "Another edit is running: wait for it to finish or cancel it"
     return ""
+
+
+def mesh_unavailable(context, what: str) -> str:
+    obj = context.active_object
+    if obj is None or obj.type != 'MESH':
+        return f"Select the mesh object {what}"
+    return ""
+
+
+def object_size(world: np.ndarray) -> float:
+    """Longest side of the bounding box (world units): the solver's unit of relative limits."""
+    return float(np.ptp(world, axis=0).max()) if len(world) else 0.0
 
 
 class _EditOperator:
@@ -85,40 +116,55 @@ class _EditOperator:
     _job: jobs.EditJob | None = None
     _timer = None
     _source_name = ""
+    _sent_local = None
 
     @classmethod
     def poll(cls, context):
-        obj = context.active_object
-        return (obj is not None and obj.type == 'MESH' and _Active.job is None
-                and context.window_manager.isoclay is not None)
+        reason = edit_unavailable(context) or cls.unavailable(context)
+        return _fail_poll(cls, reason) if reason else True
 
-    def task_params(self, context, obj) -> dict:
+    @classmethod
+    def unavailable(cls, context) -> str:
+        """Why this edit in particular cannot start ("" when it can)."""
+        return ""
+
+    def task_params(self, context, obj, world) -> dict:
+        """The task's parameters (world units); world : (n, 3) the evaluated mesh sent. Raises ValueError."""
         raise NotImplementedError
+
+    def task_arrays(self, context, obj) -> dict:
+        return {}
 
     def prepare(self, context) -> jobs.EditJob | None:
         obj = context.active_object
+        runtime = context.window_manager.isoclay
         try:
             if obj.mode == 'EDIT':
                 obj.update_from_editmode()
-            params = self.task_params(context, obj)
             depsgraph = context.evaluated_depsgraph_get()
             local, faces = mesh_io.read_local_mesh(obj, depsgraph)
+            world = mesh_io.to_world(local, mesh_io.matrix_to_numpy(obj.matrix_world))
+            params = self.task_params(context, obj, world)
+            arrays = self.task_arrays(context, obj)
             parent = results.node_for_edit(obj, local, faces)
-            ensure_solver(context)
-        except (mesh_io.MeshReadError, handles.HandleError, solver_process.SolverSetupError) as exc:
+            notice = ensure_solver(context)
+        except (mesh_io.MeshReadError, handles.HandleError, solver_process.SolverSetupError, ValueError) as exc:
+            runtime.last_error = str(exc)
             self.report({'ERROR'}, str(exc))
             return None
         params["fit"] = {"resolution": int(context.scene.isoclay.field_resolution)}
-        world = mesh_io.to_world(local, mesh_io.matrix_to_numpy(obj.matrix_world))
         client_module = solver_process.LINK.client_module()
         job = jobs.EditJob(connector(context), client_module, self.task, params,
                            None if parent else world, None if parent else faces,
-                           ensure_source_key(obj), parent_node=parent, solver_gone=solver_gone)
+                           ensure_source_key(obj), parent_node=parent, solver_gone=solver_gone, arrays=arrays)
         self._source_name = obj.name
-        runtime = context.window_manager.isoclay
+        self._sent_local = local
         runtime.running, runtime.task, runtime.stage, runtime.progress = True, self.task, "starting", 0.0
         runtime.last_error = ""
-        runtime.message = _summary_params(self.task, params)
+        runtime.message = describe_edit(self.task, params)
+        runtime.notice = notice
+        if notice:
+            self.report({'INFO'}, notice)
         _Active.job = job
         return job.start()
 
@@ -200,14 +246,14 @@ class _EditOperator:
                 return {'CANCELLED'}
             try:
                 obj = results.create_result_object(context, source, job.record, self.task,
-                                                   context.scene.isoclay.keep_source_visible)
+                                                   context.scene.isoclay.keep_source_visible, self._sent_local)
             except (mesh_io.MeshReadError, ValueError, TypeError, KeyError) as exc:
                 runtime.last_error = f"could not build the result object: {exc}"
                 self.report({'ERROR'}, runtime.last_error)
                 return {'CANCELLED'}
             runtime.stage, runtime.progress = "done", 1.0
             runtime.message = f"{obj.name}: {len(obj.data.vertices)} vertices in {snap.seconds:.1f} s"
-            for warning in tuple(results.field_of(job.record, "warnings") or ())[:3]:
+            for warning in (tuple(results.field_of(job.record, "warnings") or ()) + tuple(obj["isoclay_notes"]))[:4]:
                 self.report({'WARNING'}, str(warning))
             self.report({'INFO'}, f"{self.task} finished: {runtime.message}")
             return {'FINISHED'}
@@ -221,18 +267,38 @@ class _EditOperator:
         return {'CANCELLED'}
 
 
+def _surface_params(settings, task: str) -> dict:
+    """Output options every surface-producing task shares (CONTRACTS 3): keep_topology, resolution, closed."""
+    out = {"keep_topology": bool(settings.keep_topology)}
+    if not settings.surface_auto:
+        out["resolution"] = int(settings.surface_resolution)
+    if task in ("smooth", "sharpen") and settings.closed_result:
+        out["closed"] = True
+    return out
+
+
 class ISOCLAY_OT_deform_shape(_EditOperator, bpy.types.Operator):
     """Pull the handles to their target empties; the rest of the shape follows elastically"""
 
     bl_idname = "isoclay.deform_shape"
     bl_label = "Deform"
     task = "deform"
+    _arrays: dict = {}
 
-    def task_params(self, context, obj):
+    @classmethod
+    def unavailable(cls, context):
+        obj = context.active_object
+        if handles.ATTRIBUTE not in obj.data.attributes:
+            return f"'{obj.name}' has no handles: select vertices in Edit Mode and press Add Handle from Selection"
+        return ""
+
+    def task_params(self, context, obj, world):
         settings = context.scene.isoclay
-        points, targets = handles.handles_and_targets(obj)
-        return {"handles": points.tolist(), "targets": targets.tolist(), "stiffness": settings.stiffness,
-                "keep_topology": bool(settings.keep_topology), "resolution": int(settings.surface_resolution)}
+        groups, self._arrays = handles.deform_request(obj)
+        return {"groups": groups, "stiffness": settings.stiffness, **_surface_params(settings, self.task)}
+
+    def task_arrays(self, context, obj):
+        return self._arrays
 
 
 class ISOCLAY_OT_smooth_shape(_EditOperator, bpy.types.Operator):
@@ -242,11 +308,17 @@ class ISOCLAY_OT_smooth_shape(_EditOperator, bpy.types.Operator):
     bl_label = "Smooth"
     task = "smooth"
 
-    def task_params(self, context, obj):
+    def task_params(self, context, obj, world):
         settings = context.scene.isoclay
-        return {"strength": float(settings.smooth_strength), "preserve_volume": bool(settings.preserve_volume),
-                "keep_topology": bool(settings.keep_topology), "resolution": int(settings.surface_resolution),
-                "crisp_creases": bool(settings.crisp_creases)}
+        size = object_size(world)
+        strength = float(settings.smooth_strength)
+        if strength > MAX_STRENGTH_REL * size:
+            raise ValueError(f"Strength {strength:.4g} is too large for '{obj.name}' ({size:.4g} long): use at most "
+                             f"{MAX_STRENGTH_REL * size:.4g}")
+        params = {"strength": strength, **_surface_params(settings, self.task)}
+        if settings.creases != "auto":
+            params["creases"] = settings.creases
+        return params
 
 
 class ISOCLAY_OT_sharpen_shape(_EditOperator, bpy.types.Operator):
@@ -256,8 +328,17 @@ class ISOCLAY_OT_sharpen_shape(_EditOperator, bpy.types.Operator):
     bl_label = "Sharpen"
     task = "sharpen"
 
-    def task_params(self, context, obj):
-        return {"amount": float(context.scene.isoclay.sharpen_amount)}
+    def task_params(self, context, obj, world):
+        settings = context.scene.isoclay
+        params = {"amount": float(settings.sharpen_amount), **_surface_params(settings, self.task)}
+        if not settings.sharpen_detect_radius:
+            size = object_size(world)
+            radius = float(settings.sharpen_radius)
+            if radius > MAX_RADIUS_REL * size:
+                raise ValueError(f"Roundness {radius:.4g} is too large for '{obj.name}' ({size:.4g} long): use at "
+                                 f"most {MAX_RADIUS_REL * size:.4g}, or tick Detect roundness")
+            params["radius"] = radius
+        return params
 
 
 class ISOCLAY_OT_remesh_shape(_EditOperator, bpy.types.Operator):
@@ -267,8 +348,9 @@ class ISOCLAY_OT_remesh_shape(_EditOperator, bpy.types.Operator):
     bl_label = "Rebuild Surface"
     task = "remesh"
 
-    def task_params(self, context, obj):
-        return {"resolution": int(context.scene.isoclay.surface_resolution)}
+    def task_params(self, context, obj, world):
+        settings = context.scene.isoclay
+        return {} if settings.surface_auto else {"resolution": int(settings.surface_resolution)}
 
 
 class ISOCLAY_OT_cancel_edit(bpy.types.Operator):
@@ -279,7 +361,11 @@ class ISOCLAY_OT_cancel_edit(bpy.types.Operator):
 
     @classmethod
     def poll(cls, context):
-        return _Active.job is not None and not _Active.job.cancel_requested
+        if _Active.job is None:
+            return _fail_poll(cls, "No edit is running")
+        if _Active.job.cancel_requested:
+            return _fail_poll(cls, "Already cancelling: the solver is stopping the edit")
+        return True
 
     def execute(self, context):
         _Active.job.cancel()
@@ -299,7 +385,9 @@ class ISOCLAY_OT_add_handle(bpy.types.Operator):
     @classmethod
     def poll(cls, context):
         obj = context.active_object
-        return obj is not None and obj.type == 'MESH' and obj.mode == 'EDIT'
+        if obj is None or obj.type != 'MESH' or obj.mode != 'EDIT':
+            return _fail_poll(cls, "Select a mesh, Tab into Edit Mode and select the vertices first")
+        return True
 
     def execute(self, context):
         obj = context.active_object
@@ -322,7 +410,9 @@ class ISOCLAY_OT_remove_handle(bpy.types.Operator):
     @classmethod
     def poll(cls, context):
         obj = context.active_object
-        return obj is not None and obj.type == 'MESH' and obj.mode == 'EDIT'
+        if obj is None or obj.type != 'MESH' or obj.mode != 'EDIT':
+            return _fail_poll(cls, "Select a mesh, Tab into Edit Mode and select the vertices first")
+        return True
 
     def execute(self, context):
         try:
@@ -343,8 +433,8 @@ class ISOCLAY_OT_clear_handles(bpy.types.Operator):
 
     @classmethod
     def poll(cls, context):
-        obj = context.active_object
-        return obj is not None and obj.type == 'MESH'
+        reason = mesh_unavailable(context, "whose handles to clear")
+        return _fail_poll(cls, reason) if reason else True
 
     def execute(self, context):
         count = handles.clear_handles(context, context.active_object)
@@ -361,8 +451,10 @@ class ISOCLAY_OT_reset_targets(bpy.types.Operator):
 
     @classmethod
     def poll(cls, context):
-        obj = context.active_object
-        return obj is not None and obj.type == 'MESH'
+        reason = mesh_unavailable(context, "whose target empties to put back")
+        if not reason and not handles.target_empties(context.active_object):
+            reason = f"'{context.active_object.name}' has no target empties: add a handle first"
+        return _fail_poll(cls, reason) if reason else True
 
     def execute(self, context):
         obj = context.active_object
@@ -409,7 +501,7 @@ def fill_history(runtime, source_key: str, nodes: list) -> None:
         item.node_id = str(node.get("id") or node.get("node_id") or "")
         item.parent = str(node.get("parent") or "")
         item.task = str(node.get("task") or "")
-        item.summary = _summary_params(item.task, dict(node.get("params") or {}))
+        item.summary = str(node.get("summary") or describe_edit(item.task, dict(node.get("params") or {})))
         item.created = _format_time(node.get("created"))
         item.quality = _quality(dict(node.get("metrics") or {}))
         item.current = bool(node.get("current"))
@@ -429,11 +521,14 @@ class _RequestOperator:
 
     def _start(self, context):
         try:
-            ensure_solver(context)
+            notice = ensure_solver(context)
             call = self.make_call(context)
         except (solver_process.SolverSetupError, ValueError) as exc:
             self.report({'ERROR'}, str(exc))
             return None
+        if notice:
+            context.window_manager.isoclay.notice = notice
+            self.report({'INFO'}, notice)
         return jobs.Request(connector(context, retries=1), solver_process.LINK.client_module(), call).start()
 
     def _end(self, context, request):
@@ -476,11 +571,11 @@ class ISOCLAY_OT_refresh_history(_RequestOperator, bpy.types.Operator):
 
     @classmethod
     def poll(cls, context):
-        obj = context.active_object
-        return obj is not None and obj.type == 'MESH'
+        reason = mesh_unavailable(context, "whose edit history to list")
+        return _fail_poll(cls, reason) if reason else True
 
     def make_call(self, context):
-        key = ensure_source_key(context.active_object)
+        key = source_key_of(context.active_object) or ensure_source_key(context.active_object)
         self._key = key
         return lambda client: client.history(key)
 
@@ -514,7 +609,11 @@ class ISOCLAY_OT_bring_back(_RequestOperator, bpy.types.Operator):
 
     @classmethod
     def poll(cls, context):
-        return context.active_object is not None and len(context.window_manager.isoclay.history) > 0
+        if context.active_object is None:
+            return _fail_poll(cls, "Select the object whose history entry to use")
+        if len(context.window_manager.isoclay.history) == 0:
+            return _fail_poll(cls, "The history list is empty: press Refresh History")
+        return True
 
     def make_call(self, context):
         node = self.node_id or _selected_node(context)
@@ -544,7 +643,11 @@ class ISOCLAY_OT_edit_from_here(_RequestOperator, bpy.types.Operator):
 
     @classmethod
     def poll(cls, context):
-        return context.active_object is not None and len(context.window_manager.isoclay.history) > 0
+        if context.active_object is None:
+            return _fail_poll(cls, "Select the object whose history entry to use")
+        if len(context.window_manager.isoclay.history) == 0:
+            return _fail_poll(cls, "The history list is empty: press Refresh History")
+        return True
 
     def execute(self, context):
         node = self.node_id
@@ -625,7 +728,11 @@ class ISOCLAY_OT_stop_solver(bpy.types.Operator):
 
     @classmethod
     def poll(cls, context):
-        return solver_process.LINK.configured() and _Active.job is None
+        if not solver_process.LINK.configured():
+            return _fail_poll(cls, "No solver is running")
+        if _Active.job is not None:
+            return _fail_poll(cls, "An edit is running: cancel it first")
+        return True
 
     def execute(self, context):
         solver_process.LINK.stop()

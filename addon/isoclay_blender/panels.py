@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import bpy
+import numpy as np
 
-from . import handles, solver_process
+from . import handles, preflight, solver_process
 from .preferences import draw_status
+from .properties import source_key_of
 
 TAB = "Isoclay"
 
@@ -55,6 +57,61 @@ class ISOCLAY_PT_handles(_SidebarPanel, bpy.types.Panel):
         row.operator("isoclay.clear_handles", icon='TRASH')
 
 
+_SWATCHES = {"collection": None}
+SWATCH_COUNT = 7
+
+
+def swatch_icons() -> list[int]:
+    """Icon ids of small squares in the distortion colour map, dark to bright (made once per session)."""
+    import bpy.utils.previews
+
+    from .colours import ramp_srgb
+
+    coll = _SWATCHES["collection"]
+    if coll is None:
+        coll = bpy.utils.previews.new()
+        for i, rgb in enumerate(ramp_srgb(np.linspace(0.0, 1.0, SWATCH_COUNT))):
+            icon = coll.new(f"swatch{i}")
+            icon.icon_size = (16, 16)
+            icon.icon_pixels_float = np.tile(np.append(rgb, 1.0), 16 * 16).tolist()
+        _SWATCHES["collection"] = coll
+    return [coll[f"swatch{i}"].icon_id for i in range(SWATCH_COUNT)]
+
+
+def free_swatches() -> None:
+    import bpy.utils.previews
+
+    if _SWATCHES["collection"] is not None:
+        bpy.utils.previews.remove(_SWATCHES["collection"])
+        _SWATCHES["collection"] = None
+
+
+def draw_legend(layout, obj) -> None:
+    """Stretch / bend switch and a legend: the colour map with the numbers behind its two ends."""
+    from .results import distortion_legend
+
+    if obj is None or obj.type != 'MESH' or not any(f"isoclay_{k}_scale" in obj.data for k in ("stretch", "bend")):
+        return
+    box = layout.box()
+    box.label(text="Distortion", icon='COLOR')
+    box.row().prop(obj.isoclay, "distortion_view", expand=True)
+    legend = distortion_legend(obj)
+    if legend is None:
+        return
+    row = box.row(align=True)
+    row.label(text=f"{legend['low']:.2g}")
+    for icon in swatch_icons():
+        row.label(text="", icon_value=icon)
+    row.label(text=f"{legend['high']:.3g}")
+    box.label(text=f"{legend['kind']}: dark = none, bright = {legend['high']:.3g} or more (largest {legend['max']:.3g})")
+
+
+def object_counts(context, obj) -> tuple[int, int]:
+    """(vertices, triangles) of the mesh that would be sent (modifiers applied)."""
+    mesh = obj.evaluated_get(context.evaluated_depsgraph_get()).data
+    return len(mesh.vertices), max(0, len(mesh.loops) - 2 * len(mesh.polygons))
+
+
 class ISOCLAY_PT_edit(_SidebarPanel, bpy.types.Panel):
     bl_idname = "ISOCLAY_PT_edit"
     bl_label = "Reshape"
@@ -63,6 +120,17 @@ class ISOCLAY_PT_edit(_SidebarPanel, bpy.types.Panel):
         layout = self.layout
         settings = context.scene.isoclay
         runtime = context.window_manager.isoclay
+        obj = context.active_object
+
+        if obj is not None and obj.type == 'MESH' and not runtime.running:
+            n_v, n_f = object_counts(context, obj)
+            text = preflight.note(n_v, n_f, settings.field_resolution,
+                                  256 if settings.surface_auto else settings.surface_resolution)
+            if text:
+                box = layout.box()
+                box.alert = True
+                box.label(text="Large object", icon='INFO')
+                box.label(text=text)
 
         box = layout.box()
         box.label(text="Deform", icon='MOD_SIMPLEDEFORM')
@@ -72,20 +140,25 @@ class ISOCLAY_PT_edit(_SidebarPanel, bpy.types.Panel):
         box = layout.box()
         box.label(text="Smooth", icon='MOD_SMOOTH')
         box.prop(settings, "smooth_strength")
-        box.prop(settings, "preserve_volume")
-        box.prop(settings, "crisp_creases")
+        box.prop(settings, "creases")
         box.operator("isoclay.smooth_shape", icon='PLAY')
 
         box = layout.box()
         box.label(text="Sharpen", icon='SHARPCURVE')
-        box.prop(settings, "sharpen_amount")
+        box.prop(settings, "sharpen_amount", slider=True)
+        box.prop(settings, "sharpen_detect_radius")
+        if not settings.sharpen_detect_radius:
+            box.prop(settings, "sharpen_radius")
         box.operator("isoclay.sharpen_shape", icon='PLAY')
 
         layout.operator("isoclay.remesh_shape", icon='MOD_REMESH')
         col = layout.column()
         col.prop(settings, "field_resolution")
-        col.prop(settings, "surface_resolution")
+        col.prop(settings, "surface_auto")
+        if not settings.surface_auto:
+            col.prop(settings, "surface_resolution")
         col.prop(settings, "keep_topology")
+        col.prop(settings, "closed_result")
         col.prop(settings, "keep_source_visible")
 
         if runtime.running:
@@ -96,14 +169,14 @@ class ISOCLAY_PT_edit(_SidebarPanel, bpy.types.Panel):
             layout.label(text=f"Last: {runtime.task} {runtime.stage}")
         if runtime.message:
             layout.label(text=runtime.message)
+        if runtime.notice:
+            layout.label(text=runtime.notice, icon='INFO')
         if runtime.last_error:
             layout.label(text=runtime.last_error, icon='ERROR')
-        obj = context.active_object
         if obj is not None and obj.type == 'MESH' and obj.isoclay.node_id:
-            scales = [f"{name} red at {obj.data[f'isoclay_{name}_scale']:.3g}"
-                      for name in ("stretch", "bend") if f"isoclay_{name}_scale" in obj.data]
-            if scales:
-                layout.label(text=", ".join(scales), icon='COLOR')
+            for note in list(obj.get("isoclay_notes", []))[:3]:
+                layout.label(text=str(note), icon='INFO')
+            draw_legend(layout, obj)
 
 
 class ISOCLAY_UL_history(bpy.types.UIList):
@@ -127,7 +200,7 @@ class ISOCLAY_PT_history(_SidebarPanel, bpy.types.Panel):
         runtime = context.window_manager.isoclay
         obj = context.active_object
         layout.operator("isoclay.refresh_history", icon='FILE_REFRESH')
-        if obj is not None and runtime.history_key and obj.isoclay.source_key != runtime.history_key:
+        if obj is not None and runtime.history_key and source_key_of(obj) != runtime.history_key:
             layout.label(text="List shows another object: refresh", icon='INFO')
         layout.template_list("ISOCLAY_UL_history", "", runtime, "history", runtime, "history_index", rows=4)
         row = layout.row(align=True)

@@ -13,6 +13,7 @@ STATUS_ICONS = {
     solver_process.CONNECTED: 'CHECKMARK',
     solver_process.UNREACHABLE: 'ERROR',
     solver_process.KEY_REJECTED: 'LOCKED',
+    solver_process.STOPPED: 'CANCEL',
 }
 
 

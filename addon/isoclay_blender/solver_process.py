@@ -25,7 +25,27 @@ STARTING = "starting"
 CONNECTED = "connected"
 UNREACHABLE = "unreachable"
 KEY_REJECTED = "key rejected"
-STATUSES = (NOT_CONFIGURED, STARTING, CONNECTED, UNREACHABLE, KEY_REJECTED)
+STOPPED = "stopped unexpectedly"
+STATUSES = (NOT_CONFIGURED, STARTING, CONNECTED, UNREACHABLE, KEY_REJECTED, STOPPED)
+
+
+def exit_reason(code: int | None) -> str:
+    """A few words on how a process ended, from its exit code (negative: the signal that ended it)."""
+    if code is None:
+        return "still running"
+    if code < 0:
+        import signal
+
+        try:
+            name = signal.Signals(-code).name
+        except ValueError:
+            name = f"signal {-code}"
+        if name == "SIGKILL":
+            return "killed (SIGKILL: ended from outside, or the system ran out of memory)"
+        if name == "SIGTERM":
+            return "asked to stop (SIGTERM) by something other than the add-on"
+        return f"ended by {name}"
+    return f"exited with code {code}"
 
 
 class SolverSetupError(Exception):
@@ -82,6 +102,7 @@ class LocalSolver:
         self.connection_file = ""
         self.log_file = ""
         self.process: subprocess.Popen | None = None
+        self.was_ready = False
 
     def command(self) -> list[str]:
         cmd = [self.python, "-c", BOOTSTRAP, "serve", "--connection-file", self.connection_file]
@@ -106,6 +127,7 @@ class LocalSolver:
         if self.module_path:
             env["PYTHONPATH"] = self.module_path
         env.setdefault("PYTHONUNBUFFERED", "1")
+        env["PYTHONSAFEPATH"] = "1"  # the working folder never shadows the solver's modules (Python 3.11+, as -P)
         log = open(self.log_file, "wb")
         kwargs = {}
         if sys.platform == "win32":
@@ -133,14 +155,19 @@ class LocalSolver:
         try:
             with open(self.connection_file, "r", encoding="utf-8") as f:
                 json.load(f)
+            self.was_ready = True
             return True
         except (OSError, ValueError):
             return False
 
     def failure_message(self) -> str:
+        """Why the process is gone, in one line; a solver that never came up points at the preferences."""
         code = self.exit_code()
         tail = _log_tail(self.log_file)
-        return f"the local solver exited with code {code}" + (f": {tail}" if tail else "") + "; check the solver Python path and its log"
+        if self.was_ready:
+            return f"the local solver stopped unexpectedly: {exit_reason(code)}" + (f" (log: {tail})" if tail and code and code > 0 else "")
+        return (f"the local solver {exit_reason(code)} while starting" + (f": {tail}" if tail else "")
+                + "; check the solver Python path in the add-on preferences")
 
     def stop(self, grace_s: float = 2.0) -> None:
         """Close stdin (the solver's cue to exit), then terminate, then kill; remove the folder."""
@@ -209,6 +236,11 @@ class SolverLink:
         self.local = solver
         self._set(STARTING, f"solver process {solver.pid} starting")
 
+    def restart(self) -> None:
+        """Start the local solver again with the settings it last ran with (it died); raises SolverSetupError."""
+        old = self.local
+        self.use_local(old.python, old.module_path, old.data_dir, old.extra_args)
+
     def use_shared(self, connection_file: str) -> None:
         """Use a solver someone else started, described by its connection file."""
         self.stop()
@@ -237,6 +269,10 @@ class SolverLink:
     def configured(self) -> bool:
         return self.local is not None or bool(self.shared_file)
 
+    def died(self) -> bool:
+        """True when the local solver this link started has exited without being stopped."""
+        return self.local is not None and self.local.exit_code() is not None
+
     # state ----------------------------------------------------------------------------------
     def _set(self, status: str, detail: str) -> None:
         with self._lock:
@@ -246,7 +282,7 @@ class SolverLink:
         """Advance the state machine without blocking; returns the status."""
         if self.local is not None:
             if self.local.exit_code() is not None:
-                self._set(UNREACHABLE, self.local.failure_message())
+                self._set(STOPPED if self.local.was_ready else UNREACHABLE, self.local.failure_message())
                 return self.status
             if not self.local.ready():
                 return self.status

@@ -25,36 +25,64 @@ from .errors import Cancelled, IsoclayError
 
 
 class ConsoleUI:
-    """Progress bars and messages on stderr; Ctrl-C turns into a cooperative stop."""
+    """Progress bars (rich) and messages on stderr; Ctrl-C turns into a cooperative stop.
+
+    On a terminal each stage gets a live bar with its figures, elapsed time and ETA; elsewhere
+    (logs, pipes) a plain line is written each time a stage passes a tenth of its way.
+    """
 
     def __init__(self, stream=sys.stderr, quiet: bool = False):
+        from rich.console import Console
+
         self.stream = stream
         self.quiet = quiet
         self.stop_requested = False
-        self._last = 0.0
-        self._stage = None
+        self.console = Console(file=stream, highlight=False, soft_wrap=True)
+        self._bars = None
+        self._tasks: dict = {}
+        self._logged: dict = {}
+
+    def _bar_set(self):
+        from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn, TimeElapsedColumn, TimeRemainingColumn
+
+        if self._bars is None:
+            self._bars = Progress(TextColumn("{task.description:<10}"), BarColumn(bar_width=24), TaskProgressColumn(),
+                                  TextColumn("{task.fields[info]}"), TimeElapsedColumn(), TextColumn("eta"),
+                                  TimeRemainingColumn(), console=self.console, transient=False)
+            self._bars.start()
+        return self._bars
 
     def progress(self, stage: str, fraction: float, info: dict) -> None:
-        now = time.monotonic()
-        if self.quiet or (stage == self._stage and now - self._last < 0.2 and fraction < 1.0):
+        if self.quiet:
             return
-        self._last, self._stage = now, stage
-        width = 24
-        done = int(round(max(0.0, min(1.0, fraction)) * width))
-        extra = " ".join(f"{k}={_fmt(v)}" for k, v in list(info.items())[:4])
-        end = "\n" if fraction >= 1.0 or not self.stream.isatty() else ""
-        self.stream.write(f"\r{stage:<10} [{'#' * done}{'.' * (width - done)}] {fraction * 100:5.1f}% {extra}"[:110] + end)
-        self.stream.flush()
+        fraction = max(0.0, min(1.0, float(fraction)))
+        extra = " ".join(f"{k}={_fmt(v)}" for k, v in list(info.items())[:5])
+        if not self.console.is_terminal:
+            tenth = int(fraction * 10)
+            if self._logged.get(stage) != tenth:
+                self._logged[stage] = tenth
+                self.console.print(f"{stage:<10} {fraction * 100:5.1f}% {extra}")
+            return
+        bars = self._bar_set()
+        if stage not in self._tasks:
+            self._tasks[stage] = bars.add_task(stage, total=1.0, info="")
+        bars.update(self._tasks[stage], completed=fraction, info=extra)
 
     def should_stop(self) -> bool:
         return self.stop_requested
 
     def info(self, message: str) -> None:
         if not self.quiet:
-            self.stream.write(message + "\n")
+            self.console.print(message, markup=False)
 
     def warn(self, message: str) -> None:
-        self.stream.write(f"warning: {message}\n")
+        self.console.print(f"warning: {message}", markup=False)
+
+    def close(self) -> None:
+        """Stop the live bars (leaves their last state on screen)."""
+        if self._bars is not None:
+            self._bars.stop()
+            self._bars = None
 
 
 def _fmt(v) -> str:
@@ -120,6 +148,7 @@ def main(argv: list[str] | None = None) -> int:
         sys.stderr.write(f"isoclay: internal error ({type(exc).__name__}: {exc}); rerun with ISOCLAY_DEBUG=1 for details\n")
         return 1
     finally:
+        ui.close()
         signal.signal(signal.SIGINT, previous)
 
 

@@ -50,6 +50,8 @@ class MeshRecord:
     vertices : (n, 3) float64, world units
     faces : (m, 3) int64
     vertex_values : name -> (n,) float32 (e.g. "stretch", "bend")
+    source_face : (n,) int32 or None: per vertex, the face of the edit's input mesh (as sent) it
+        came from (-1: none); source_bary : (n, 3) float32 or None: weights of that face's corners
     """
 
     vertices: np.ndarray
@@ -61,6 +63,8 @@ class MeshRecord:
     job_id: str | None = None
     task: str = ""
     warnings: tuple = ()
+    source_face: np.ndarray | None = None
+    source_bary: np.ndarray | None = None
 
 
 @dataclass
@@ -274,17 +278,21 @@ class SolverClient:
         return dict(msg.body)
 
     def submit(self, job_id: str, task: str, params: dict, vertices=None, faces=None, source_key: str = "",
-               parent_node: str | None = None) -> dict:
+               parent_node: str | None = None, arrays: dict | None = None) -> dict:
         """Start an edit; idempotent on ``job_id`` (a known id returns the existing job).
 
         vertices : (n, 3) float32/float64 world units, faces : (m, 3) int32/int64; both may be
         None when ``parent_node`` is given (the edit then starts from that node's result).
         The mesh is uploaded only if the server lacks its content hash.
+        arrays : more array frames sent with every attempt, e.g. a deform's handle groups as
+            ``handles:<i>`` ((k, 3) float64, world units; params["groups"][i] holds the transform)
         """
         if self.boot_id == "":
             self.ping()
         body = {"job_id": job_id, "task": task, "params": params, "source_key": source_key,
                 "parent_node": parent_node, "mesh_hash": None}
+        extra = {name: np.ascontiguousarray(a, dtype="<f8" if name.startswith("handles:") else None)
+                 for name, a in (arrays or {}).items()}
         arrays = digests = None
         if vertices is not None or faces is not None:
             if vertices is None or faces is None:
@@ -300,11 +308,11 @@ class SolverClient:
         elif parent_node is None:
             raise ClientError("submit needs a mesh (vertices and faces) or a parent_node to start from")
         try:
-            msg = self._request("submit", body)
+            msg = self._request("submit", body, extra or None)
         except RemoteError as exc:
             if exc.code != "need_mesh" or arrays is None:
                 raise
-            msg = self._request("submit", body, arrays, digests=digests)
+            msg = self._request("submit", body, {**arrays, **extra}, digests=digests)
         return dict(self._jobs.get(job_id, msg.body))
 
     def poll(self, job_id: str) -> dict:
@@ -397,4 +405,4 @@ def _record(msg: wire.Message) -> MeshRecord:
     values = {name[6:]: a for name, a in msg.arrays.items() if name.startswith("value:")}
     b = msg.body
     return MeshRecord(v, f, values, dict(b["metrics"]), dict(b["report"]), b["node_id"], b["job_id"], b["task"],
-                      tuple(b["warnings"]))
+                      tuple(b["warnings"]), msg.arrays.get("source_face"), msg.arrays.get("source_bary"))

@@ -16,6 +16,7 @@ import numpy as np
 from .field.base import SDFField
 from .field.fit import FitConfig, fit_field
 from .mesh import measures
+from .mesh.correspondence import SurfaceCorrespondence, closest_surface_points, identity_correspondence, usable_faces
 from .mesh.normalize import Normalization
 from .mesh.types import TriangleMesh
 from .mesh.validate import MeshCheck, validate_mesh
@@ -69,7 +70,9 @@ def prepare_mesh(mesh: TriangleMesh, name: str = "mesh") -> Prepared:
 @dataclass(frozen=True)
 class EditOutcome:
     """mesh : result in world units (vertex_values carried); field : the field the edit started
-    from; result_field : the edited field or None; report : JSON-ready summary."""
+    from; result_field : the edited field or None; report : JSON-ready summary;
+    correspondence : for each result vertex its source point on the input mesh as given
+    (face index into mesh.faces as sent, barycentric weights), see source_correspondence."""
 
     mesh: TriangleMesh
     field: SDFField
@@ -81,6 +84,7 @@ class EditOutcome:
     seconds: dict
     warnings: tuple
     report: dict = dc_field(default_factory=dict)
+    correspondence: SurfaceCorrespondence | None = None
 
 
 def world_metrics(metrics: dict, normalization: Normalization, diagonal: float) -> dict:
@@ -122,6 +126,10 @@ def run_edit(
         seconds["fit"] = fitted.seconds["total"]
     result = module.run(field, prepared.unit, config, progress, should_stop)
     seconds.update({k: float(v) for k, v in result.seconds.items()})
+    t1 = time.perf_counter()
+    progress("correspondence", 0.0, {})
+    correspondence = source_correspondence(prepared, result.mesh, result.rest_points)
+    seconds["correspondence"] = time.perf_counter() - t1
     world = prepared.normalization.mesh_from_unit(result.mesh)
     for name in LENGTH_VERTEX_VALUES & set(world.vertex_values):
         world.vertex_values[name] = (world.vertex_values[name] / prepared.normalization.scale).astype(np.float32)
@@ -143,8 +151,27 @@ def run_edit(
     }
     return EditOutcome(
         world, field, result.field, prepared.normalization, prepared.mesh_hash,
-        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, prepared.check.warnings, report,
+        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, prepared.check.warnings, report, correspondence,
     )
+
+
+def source_correspondence(prepared: Prepared, result_unit: TriangleMesh, rest_points: np.ndarray | None) -> SurfaceCorrespondence:
+    """Per result vertex, the face of the input mesh as sent (prepared.world, not the cleaned copy:
+    the add-on indexes its own triangles) and barycentric weights there.
+
+    A result that kept the input's vertices and faces maps each vertex to itself. Otherwise each
+    vertex's source point is rest_points (unit box: a deform's pre-image through its own map) or,
+    when None, the vertex itself (smooth, sharpen, remesh), projected to the closest point of the input.
+    """
+    given = prepared.world
+    usable = usable_faces(given.vertices, given.faces)
+    if result_unit.n_vertices == given.n_vertices and np.array_equal(result_unit.faces, prepared.unit.faces):
+        return identity_correspondence(given.n_vertices, given.faces, usable)
+    points = result_unit.vertices if rest_points is None else np.asarray(rest_points, dtype=np.float64)
+    if points.shape != (result_unit.n_vertices, 3):
+        raise ValueError(f"rest_points has shape {points.shape}, expected ({result_unit.n_vertices}, 3)")
+    unit_input = prepared.normalization.to_unit(given.vertices)
+    return closest_surface_points(points, unit_input, given.faces)
 
 
 def _jsonable(value):

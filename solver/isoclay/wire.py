@@ -508,4 +508,13 @@ def mesh_arrays(message: Message) -> tuple[np.ndarray, np.ndarray]:
     for name, a in message.arrays.items():
         if name.startswith("value:") and a.shape != (v.shape[0],):
             raise WireError(f"array {name!r} has shape {a.shape}, expected ({v.shape[0]},)", "bad_message")
+    face, bary = message.arrays.get("source_face"), message.arrays.get("source_bary")
+    if (face is None) != (bary is None):
+        raise WireError("source_face and source_bary come together or not at all", "bad_message")
+    if face is not None:
+        if face.dtype != DTYPES["<i4"] or face.shape != (v.shape[0],):
+            raise WireError(f"source_face must be <i4 of shape ({v.shape[0]},), got {face.dtype.str} {face.shape}",
+                            "bad_message")
+        if bary.dtype != DTYPES["<f4"] or bary.shape != (v.shape[0], 3) or not np.isfinite(bary).all():
+            raise WireError(f"source_bary must be finite <f4 of shape ({v.shape[0]}, 3)", "bad_message")
     return v, f

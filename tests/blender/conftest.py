@@ -82,6 +82,18 @@ def solver_tasks() -> set[str]:
     return set(done.stdout.split()) if done.returncode == 0 else set()
 
 
+def solver_takes_handle_groups() -> str:
+    """"" when the solver's deform reads the group form (CONTRACTS 1), else why not. Reads the task's source
+    instead of importing it (that would import torch: seconds per run)."""
+    path = os.path.join(solver_source(), "isoclay", "tasks", "deform.py")
+    try:
+        with open(path, encoding="utf-8") as f:
+            text = f.read()
+    except OSError:
+        return f"{path} is missing"
+    return "" if '"groups"' in text else f"{path} does not read \"groups\" yet"
+
+
 SERVE_MISSING = ("the solver service is not there yet: solver/isoclay/commands/serve.py "
                  "(the `isoclay serve` subcommand) does not exist")
 

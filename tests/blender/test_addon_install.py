@@ -21,7 +21,7 @@ def test_zip_holds_wheels_and_solver_copies(addon_zip):
     with zipfile.ZipFile(addon_zip) as z:
         names = set(z.namelist())
         manifest = tomllib.loads(z.read("blender_manifest.toml").decode())
-        for name in ("wire.py", "client.py"):
+        for name in ("wire.py", "client.py", "summaries.py", "estimates.py"):
             with open(os.path.join(ROOT, "solver", "isoclay", name), "rb") as f:
                 assert z.read(name) == f.read(), f"{name} in the zip differs from solver/isoclay/{name}"
     # the builder records the per-platform selection in [build.generated] (Blender's blender_ext.py)
@@ -101,3 +101,58 @@ def test_every_icon_named_in_the_ui_exists(addon):
         used |= set(re.findall(r"icon='[A-Z0-9_]+' if [^\n]+ else '([A-Z0-9_]+)'", text))
     assert {"RADIOBUT_OFF", "BLANK1", "PLAY"} <= used  # conditional ones are found too: the check is not vacuous
     assert used <= valid, f"unknown icons: {sorted(used - valid)}"
+
+
+def test_every_greyed_out_operator_says_why(empty_scene, addon):
+    # Blender shows poll_message_set as the tooltip and puts it in the error scripts get
+    def reason(op, **kwargs):
+        with pytest.raises(RuntimeError) as err:
+            getattr(bpy.ops.isoclay, op)(**kwargs)
+        return str(err.value)
+
+    addon.solver_process.LINK.stop()
+    for op in ("deform_shape", "smooth_shape", "sharpen_shape", "remesh_shape"):
+        assert "Select a mesh object to reshape" in reason(op)
+    assert "Select a mesh, Tab into Edit Mode" in reason("add_handle")
+    assert "Select a mesh, Tab into Edit Mode" in reason("remove_handle")
+    assert "Select the mesh object whose handles to clear" in reason("clear_handles")
+    assert "Select the mesh object whose target empties" in reason("reset_targets")
+    assert "Select the mesh object whose edit history" in reason("refresh_history")
+    assert "Select the object whose history entry" in reason("bring_back")
+    assert "Select the object whose history entry" in reason("edit_from_here")
+    assert "No edit is running" in reason("cancel_edit")
+    assert "No solver is running" in reason("stop_solver")
+    # a curve is not a mesh: the message names it
+    bpy.ops.curve.primitive_bezier_curve_add()
+    curve = bpy.context.active_object.name
+    assert f"'{curve}' is a curve, not a mesh: select a mesh object" in reason("smooth_shape")
+    # a mesh without handles cannot be deformed: the message says how to add one
+    bpy.ops.mesh.primitive_cube_add()
+    assert "'Cube' has no handles: select vertices in Edit Mode" in reason("deform_shape")
+    assert "'Cube' has no target empties" in reason("reset_targets")
+    assert "The history list is empty: press Refresh History" in reason("bring_back")
+    # while an edit runs, another cannot start and the solver cannot be stopped under it
+    addon.operators._Active.job = object()
+    try:
+        assert "Another edit is running" in reason("smooth_shape")
+    finally:
+        addon.operators._Active.job = None
+
+
+def test_build_works_from_another_checkout_with_this_interpreter(tmp_path, addon_zip):
+    # a checkout without .venv-blender: build.py finds Blender's builder through the running interpreter's bpy
+    import shutil
+    import subprocess
+    import sys
+
+    checkout = tmp_path / "elsewhere"
+    shutil.copytree(os.path.join(ROOT, "addon"), checkout / "addon", ignore=shutil.ignore_patterns("__pycache__"))
+    (checkout / "solver" / "isoclay").mkdir(parents=True)
+    for name in ("wire.py", "client.py", "summaries.py", "estimates.py"):
+        shutil.copyfile(os.path.join(ROOT, "solver", "isoclay", name), checkout / "solver" / "isoclay" / name)
+    done = subprocess.run([sys.executable, str(checkout / "addon" / "build.py"), "--dist", str(tmp_path / "dist"),
+                           "--cache", os.path.join(ROOT, "build", "wheels"), "--offline"],
+                          capture_output=True, text=True, timeout=300, cwd=str(tmp_path))
+    assert done.returncode == 0, done.stderr
+    assert sorted(p.name for p in (tmp_path / "dist").iterdir()) == sorted(
+        f"isoclay-0.1.0-{p}.zip" for p in ("linux_x64", "windows_x64", "macos_arm64", "macos_x64"))

@@ -127,3 +127,32 @@ def test_bad_meshes_are_refused_with_clear_errors(empty_scene, addon):
     bpy.context.view_layer.update()
     with pytest.raises(mio.MeshReadError, match="scale is zero"):
         mio.to_local(np.zeros((1, 3)), mio.matrix_to_numpy(flat.matrix_world))
+
+
+def test_distortion_view_switches_and_its_legend_has_the_numbers(empty_scene, addon):
+    bpy.ops.mesh.primitive_ico_sphere_add(subdivisions=2)
+    source = bpy.context.active_object
+    world, faces = addon.mesh_io.read_world_mesh(source, bpy.context.evaluated_depsgraph_get())
+    stretch = np.linspace(0.0, 2.0, len(world)).astype(np.float32)
+    bend = np.linspace(1.0, 0.0, len(world)).astype(np.float32)
+    record = {"vertices": world, "faces": faces, "vertex_values": {"stretch": stretch, "bend": bend},
+              "metrics": {}, "node_id": "cd" * 16}
+    obj = addon.results.create_result_object(bpy.context, source, record, "deform")
+    colours = obj.data.color_attributes
+    assert colours.active_color_name == "stretch"
+    obj.isoclay.distortion_view = "bend"
+    assert colours.active_color_name == "bend"
+    legend = addon.results.distortion_legend(obj)
+    # the bright end stands for the 95th percentile (numpy.percentile), the dark end for none
+    assert legend["kind"] == "bend" and legend["low"] == 0.0
+    np.testing.assert_allclose(legend["high"], np.percentile(bend, 95), rtol=1e-6)
+    np.testing.assert_allclose(legend["max"], 1.0, rtol=1e-6)
+    # drawn colours: 0 at the colour map's dark end, the scale and beyond at its bright end (linear storage)
+    got = np.empty(len(world) * 4, dtype=np.float32)
+    colours["bend"].data.foreach_get("color", got)
+    got = got.reshape(-1, 4)
+    ends = addon.colours.srgb_to_linear(addon.colours.RAMP_SRGB[[0, -1]])
+    np.testing.assert_allclose(got[np.argmin(bend), :3], ends[0], atol=1e-6)
+    np.testing.assert_allclose(got[np.argmax(bend), :3], ends[1], atol=1e-6)
+    obj.isoclay.distortion_view = "none"
+    assert addon.results.distortion_legend(obj) is None

@@ -31,6 +31,9 @@ def test_preferences_start_a_solver_that_dies_with_its_stdin(empty_scene, addon,
         assert link.wait_ready(timeout_s=120) == "connected", link.detail
         process = link.local.process
         folder = link.local.folder
+        # started with the working folder off sys.path (PYTHONSAFEPATH, Python 3.11+ -P)
+        with open(f"/proc/{process.pid}/environ", "rb") as f:
+            assert b"PYTHONSAFEPATH=1" in f.read().split(b"\0")
         assert stat.S_IMODE(os.stat(folder).st_mode) == 0o700
         # Blender going away closes the pipe: the solver must end by itself
         process.stdin.close()

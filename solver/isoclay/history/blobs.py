@@ -18,6 +18,8 @@ import numpy as np
 from ..errors import InvalidInput, SolverFailure
 
 MESH_MAGIC = b"ICMESH1\0"
+#: Blobs of named arrays (e.g. the handle points of a deform request).
+ARRAYS_MAGIC = b"ICARRS1\0"
 _HEX = set("0123456789abcdef")
 
 
@@ -126,20 +128,37 @@ class BlobStore:
         return removed
 
 
-def pack_mesh(vertices: np.ndarray, faces: np.ndarray, values: dict | None = None) -> list:
-    """Buffers of a mesh blob: magic, header length, msgpack header, raw arrays (f8 / i8 / f4)."""
+def pack_mesh(vertices: np.ndarray, faces: np.ndarray, values: dict | None = None, extra: dict | None = None) -> list:
+    """Buffers of a mesh blob: magic, header length, msgpack header, raw arrays (f8 / i8 / f4).
+
+    extra : more named arrays stored with their own dtype (e.g. "source_face" <i4, "source_bary" <f4),
+        read back by unpack_arrays; unpack_mesh ignores them
+    """
     arrays = [("vertices", np.ascontiguousarray(vertices, "<f8")), ("faces", np.ascontiguousarray(faces, "<i8"))]
     for name in sorted(values or {}):
         arrays.append((f"value:{name}", np.ascontiguousarray(values[name], "<f4")))
-    header = msgpack.packb([[n, a.dtype.str, list(a.shape)] for n, a in arrays], use_bin_type=True)
-    return [MESH_MAGIC, struct.pack("<I", len(header)), header] + [memoryview(a).cast("B") for _, a in arrays]
+    for name in sorted(extra or {}):
+        array = np.asarray(extra[name])
+        arrays.append((name, np.ascontiguousarray(array, array.dtype.newbyteorder("<"))))
+    return pack_arrays(arrays, MESH_MAGIC)
 
 
-def unpack_mesh(data) -> tuple[np.ndarray, np.ndarray, dict]:
-    """(vertices (n,3) f8, faces (m,3) i8, values {name: (n,) f4}) from a mesh blob (read-only views)."""
+def pack_arrays(arrays, magic: bytes = ARRAYS_MAGIC) -> list:
+    """Buffers of an arrays blob: magic, header length, msgpack header [[name, dtype, shape], ...], raw arrays.
+
+    arrays : sequence of (name, array) or a dict; stored little-endian, in the given order
+    """
+    items = list(arrays.items()) if isinstance(arrays, dict) else list(arrays)
+    items = [(n, np.ascontiguousarray(a, np.asarray(a).dtype.newbyteorder("<"))) for n, a in items]
+    header = msgpack.packb([[n, a.dtype.str, list(a.shape)] for n, a in items], use_bin_type=True)
+    return [magic, struct.pack("<I", len(header)), header] + [memoryview(a).cast("B") if a.nbytes else b"" for _, a in items]
+
+
+def unpack_arrays(data, magic: bytes = ARRAYS_MAGIC) -> dict:
+    """name -> read-only array view of a blob written by pack_arrays (or pack_mesh with MESH_MAGIC)."""
     view = memoryview(data)
-    if bytes(view[:8]) != MESH_MAGIC:
-        raise SolverFailure("history blob is not an isoclay mesh: the data directory was altered")
+    if bytes(view[:8]) != magic:
+        raise SolverFailure("history blob is not of the expected isoclay kind: the data directory was altered")
     (length,) = struct.unpack("<I", view[8:12])
     header = msgpack.unpackb(view[12:12 + length], raw=False)
     offset, out = 12 + length, {}
@@ -148,5 +167,13 @@ def unpack_mesh(data) -> tuple[np.ndarray, np.ndarray, dict]:
         count = int(np.prod(shape))
         out[name] = np.frombuffer(view, dtype, count, offset).reshape(shape)
         offset += count * dtype.itemsize
+    return out
+
+
+def unpack_mesh(data) -> tuple[np.ndarray, np.ndarray, dict]:
+    """(vertices (n,3) f8, faces (m,3) i8, values {name: (n,) f4}) from a mesh blob (read-only views)."""
+    if bytes(memoryview(data)[:8]) != MESH_MAGIC:
+        raise SolverFailure("history blob is not an isoclay mesh: the data directory was altered")
+    out = unpack_arrays(data, MESH_MAGIC)
     values = {k[6:]: v for k, v in out.items() if k.startswith("value:")}
     return out["vertices"], out["faces"], values

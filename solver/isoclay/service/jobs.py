@@ -18,11 +18,13 @@ from pathlib import Path
 
 from .. import wire
 from ..estimates import estimate_memory
-from ..history.blobs import BlobStore, pack_mesh, unpack_mesh
+from ..history.blobs import MESH_MAGIC, BlobStore, pack_mesh, unpack_arrays, unpack_mesh
 from ..history.store import HistoryStore, JobRow
+from . import handle_groups
 
-#: Parameters the echo task accepts only when a server runs with test parameters enabled.
-ECHO_TEST_PARAMS = {"delay_s", "steps", "ignore_cancel", "crash"}
+#: Parameters the echo task accepts only when a server runs with test parameters enabled
+#: ("groups": handle groups whose received points the echo reports, for the handle-frame plumbing).
+ECHO_TEST_PARAMS = {"delay_s", "steps", "ignore_cancel", "crash", "groups"}
 
 
 class ServiceError(Exception):
@@ -103,6 +105,7 @@ class JobManager:
             raise ServiceError("unknown_task", f"unknown task {task!r}: this solver offers {', '.join(sorted(known_tasks()))}")
         params = body["params"]
         self._check_params(task, params)
+        frames = self._handle_frames(params, arrays)
         if len(self.queue) >= self.limits.max_queue:
             raise ServiceError("busy", f"the solver's queue is full ({self.limits.max_queue} jobs): wait for a job "
                                        "to finish or cancel one")
@@ -133,6 +136,7 @@ class JobManager:
             raise ServiceError("invalid_input", f"this job needs about {need / 2**30:.1f} GiB, the solver allows "
                                                 f"{self.limits.memory_bytes / 2**30:.1f} GiB: decimate the mesh, lower "
                                                 "params.fit.resolution, or raise --memory-limit")
+        params = handle_groups.store_frames(params, frames, self.blobs)  # durable before the row that names it
         row, _ = self.store.create_job(job_id, source, task, params, mesh_hash, base)
         job = Job(row, row.state)
         self._remember(job)
@@ -197,9 +201,10 @@ class JobManager:
         node = self.store.node(node_id)
         if node is None:
             raise ServiceError("unknown_node", f"node {node_id} is not in this solver's history")
-        v, f, values = unpack_mesh(self.blobs.read(node.result_blob))
+        data = self.blobs.read(node.result_blob)
+        v, f, values = unpack_mesh(data)
         v, f = wire.canonical_mesh(v, f)
-        arrays = {"vertices": v, "faces": f, **{f"value:{k}": a for k, a in values.items()}}
+        arrays = {"vertices": v, "faces": f, **{f"value:{k}": a for k, a in values.items()}, **correspondence_of(data)}
         body = {"node_id": node.node_id, "job_id": node.job_id, "task": node.task, "metrics": node.metrics,
                 "report": node.report, "warnings": node.warnings}
         return body, arrays, None
@@ -285,6 +290,14 @@ class JobManager:
             steps = params.get("steps", 20)
             if not isinstance(steps, int) or not 1 <= steps <= 10_000:
                 raise ServiceError("invalid_input", "echo steps must be an integer 1..10000")
+
+    @staticmethod
+    def _handle_frames(params: dict, arrays: dict) -> dict:
+        """The request's handles:<i> frames, checked against params.groups (one-line refusal)."""
+        try:
+            return handle_groups.check_frames(params, arrays)
+        except handle_groups.HandleFrameError as exc:
+            raise ServiceError("invalid_input", str(exc)) from None
 
     def _checked_mesh(self, msg: wire.Message):
         try:
@@ -406,6 +419,11 @@ class JobManager:
             self.crashes += 1
             self._set_final(job, "failed", crash_reason(job.process.exitcode, self.limits))
         job.process = None
+
+
+def correspondence_of(mesh_blob) -> dict:
+    """source_face / source_bary stored with a result mesh (see worker.correspondence_arrays), or {}."""
+    return {k: a for k, a in unpack_arrays(mesh_blob, MESH_MAGIC).items() if k in ("source_face", "source_bary")}
 
 
 def crash_reason(exitcode, limits: JobLimits) -> str:

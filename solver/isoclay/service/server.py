@@ -23,6 +23,7 @@ from .. import __version__, wire
 from ..errors import InvalidInput, IsoclayError
 from ..history.blobs import BlobStore
 from ..history.store import HistoryStore
+from ..summaries import describe_edit
 from . import auth
 from .jobs import JobLimits, JobManager, ServiceError
 
@@ -255,7 +256,8 @@ class Server:
             keep = rows[-MAX_HISTORY_NODES:]
             keep += [n for n in rows[:-MAX_HISTORY_NODES] if n.node_id == current]
             rows = sorted(keep, key=lambda n: n.finished)
-        nodes = [_compact(n.summary(current)) for n in rows]
+        # "summary" says what each edit was (summaries.describe_edit), so no client needs the bulky parameters
+        nodes = [_compact(dict(n.summary(current), summary=describe_edit(n.task, n.params))) for n in rows]
         return "history", {"source_key": source, "current": current, "nodes": nodes}, None
 
     # ---------------------------------------------------------------- replies

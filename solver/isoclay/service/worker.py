@@ -122,11 +122,15 @@ def main(conn, spec: dict) -> None:
 def run_job(spec: dict, channel: _Channel) -> dict:
     from ..errors import Cancelled
     from ..history.blobs import BlobStore, pack_mesh, unpack_mesh
+    from .handle_groups import echo_report, restore_points
 
     blobs = BlobStore(spec["blob_root"])
     v, f, values = unpack_mesh(blobs.read(spec["input_blob"]))
+    params = restore_points(spec["params"], blobs)  # handle groups' points back from their blob
     if spec["task"] == "echo":
-        return _test_echo(spec, channel, blobs, v, f)
+        record = _test_echo(spec, channel, blobs, v, f)
+        record["metrics"].update(echo_report(params))
+        return record
 
     import numpy as np
 
@@ -139,8 +143,9 @@ def run_job(spec: dict, channel: _Channel) -> dict:
     from ..field.checkpoint import load_field, save_field
     from ..field.fit import FitConfig
     from ..pipeline import fit_key, prepare_mesh, run_edit
+    from ..summaries import describe_edit
 
-    params = dict(spec["params"])
+    params = dict(params)
     fit_settings = params.pop("fit", None) or {}
     if not isinstance(fit_settings, dict):
         raise InvalidInput("params.fit must be a map of fit settings (resolution, steps, ...)")
@@ -166,7 +171,8 @@ def run_job(spec: dict, channel: _Channel) -> dict:
     outcome = run_edit(mesh, spec["task"], params, field=field, fit_config=fit_config, progress=channel.progress,
                        should_stop=channel.should_stop, seed=int(spec.get("seed", 0)), prepared=prepared)
     out = outcome.mesh
-    result_blob = blobs.put_bytes(pack_mesh(out.vertices, out.faces, out.vertex_values))  # the edit itself first
+    result_blob = blobs.put_bytes(pack_mesh(out.vertices, out.faces, out.vertex_values,  # the edit itself first
+                                            correspondence_arrays(outcome.correspondence)))
     warnings = [str(w)[:300] for w in outcome.warnings]
     tmp_dir = blobs.root / "tmp"
     tmp_dir.mkdir(exist_ok=True, mode=0o700)
@@ -190,8 +196,19 @@ def run_job(spec: dict, channel: _Channel) -> dict:
     report = dict(outcome.report) if isinstance(outcome.report, dict) else {}
     report.setdefault("seconds", seconds)
     report["field_cache_hit"] = cache_hit
+    report["params"] = spec["params"]  # as stored: handle points stay in their blob, not in every reply
+    report["summary"] = describe_edit(spec["task"], spec["params"])
     return {"result_blob": result_blob, "field_blob": field_blob, "result_field_blob": result_field_blob,
             "metrics": metrics, "report": _json_ready(report), "warnings": warnings}
+
+
+def correspondence_arrays(correspondence) -> dict:
+    """The arrays stored with a result mesh for the add-on: source_face (n,) <i4, source_bary (n, 3) <f4."""
+    if correspondence is None:
+        return {}
+    import numpy as np
+
+    return {"source_face": np.asarray(correspondence.face, "<i4"), "source_bary": np.asarray(correspondence.bary, "<f4")}
 
 
 def _import_field_kinds() -> None:

@@ -12,6 +12,7 @@ TASK_MODULES = {
     "deform": "isoclay.tasks.deform",
     "smooth": "isoclay.tasks.smooth",
     "sharpen": "isoclay.tasks.sharpen",
+    "decimate": "isoclay.tasks.decimate",
 }
 
 
