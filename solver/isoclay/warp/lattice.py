@@ -44,10 +44,15 @@ def tensor_basis(t: np.ndarray, cell: float) -> tuple[np.ndarray, np.ndarray]:
     Returns B (n, 27) and G (n, 27, 3), G[:, k, d] = dB_k / dx_d in unit-box lengths^-1.
     """
     w, dw = quadratic_bspline(np.asarray(t, dtype=np.float64))
-    i, j, k = OFFSETS[:, 0], OFFSETS[:, 1], OFFSETS[:, 2]
-    wx, wy, wz = w[:, 0][:, i], w[:, 1][:, j], w[:, 2][:, k]
-    dx, dy, dz = dw[:, 0][:, i] / cell, dw[:, 1][:, j] / cell, dw[:, 2][:, k] / cell
-    return wx * wy * wz, np.stack([dx * wy * wz, wx * dy * wz, wx * wy * dz], axis=-1)
+    n = len(w)
+    wx, wy, wz = w[:, 0, :, None, None], w[:, 1, None, :, None], w[:, 2, None, None, :]
+    dx, dy, dz = dw[:, 0, :, None, None] / cell, dw[:, 1, None, :, None] / cell, dw[:, 2, None, None, :] / cell
+    wyz = wy * wz
+    g = np.empty((n, 3, 3, 3, 3))
+    g[..., 0] = dx * wyz
+    g[..., 1] = wx * (dy * wz)
+    g[..., 2] = (wx * wy) * dz
+    return (wx * wyz).reshape(n, 27), g.reshape(n, 27, 3)
 
 
 def smeared_inside(values: np.ndarray, width: float) -> np.ndarray:
@@ -170,6 +175,16 @@ class SplineLattice:
             d, b, _ = self.basis(points[start : start + chunk])
             out[start : start + chunk] = np.einsum("nk,nka->na", b, control[d])
         return out
+
+    def map_and_jacobian(self, control: np.ndarray, points: np.ndarray, chunk: int = 200_000):
+        """(phi (n, 3), J (n, 3, 3)) at points, locating each point once."""
+        x, jac = np.empty((len(points), 3)), np.empty((len(points), 3, 3))
+        for start in range(0, len(points), chunk):
+            d, b, g = self.basis(points[start : start + chunk])
+            c = control[d]
+            x[start : start + chunk] = np.einsum("nk,nka->na", b, c)
+            jac[start : start + chunk] = np.einsum("nkd,nka->nad", g, c)
+        return x, jac
 
     def jacobian(self, control: np.ndarray, points: np.ndarray, chunk: int = 200_000) -> np.ndarray:
         """(n, 3, 3) J[:, a, d] = d phi_a / d x_d at points."""
