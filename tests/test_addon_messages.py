@@ -33,6 +33,16 @@ def _sphere(radius=0.3, centre=(0.0, 0.0, 0.0)):
     return TriangleMesh(np.asarray(m.vertices) + centre, np.asarray(m.faces))
 
 
+def _folded_lattice():
+    from isoclay.warp.lattice import SplineLattice
+
+    def box(p):
+        q = np.abs(p) - 0.2
+        return np.linalg.norm(np.maximum(q, 0), axis=1) + np.minimum(q.max(axis=1), 0)
+
+    return SplineLattice.build(box, [-0.2] * 3, [0.2] * 3, 0.1)
+
+
 def _solver_errors():
     from isoclay.extract import extract_mesh
     from isoclay.field.analytic import SphereSDF
@@ -40,6 +50,7 @@ def _solver_errors():
     from isoclay.mesh.validate import validate_mesh
     from isoclay.service.jobs import crash_reason, JobLimits
     from isoclay.tasks import deform, sharpen, smooth
+    from isoclay.tasks.handles import check_on_surface
 
     far = SphereSDF(center=(5.0, 5.0, 5.0), radius=0.1)
     tiny = SphereSDF(center=(0.0, 0.0, 0.0), radius=0.05)
@@ -47,7 +58,9 @@ def _solver_errors():
     yield "amount out of range", _error(lambda: sharpen.Config.from_params({"amount": 2.0}, UNIT)), "Amount"
     yield "radius too large", _error(lambda: sharpen.Config.from_params({"amount": 0.5, "radius": 9.0}, UNIT)), "Roundness"
     yield "unknown setting", _error(lambda: deform.Config.from_params({"handles": [], "targets": [], "twist": 1}, UNIT)), "same isoclay version"
-    yield "few samples", _error(lambda: deform.sample_surface(far, _sphere(), 256, np.random.default_rng(0))), "Field detail"
+    yield "far handle", _error(lambda: check_on_surface(np.array([0.3]), 0.01, 2.0)), "Field detail"
+    yield "fold", _error(lambda: deform._fold_check(_folded_lattice(), _folded_lattice().rest * [1, 1, -1], np.zeros((0, 3)), 1.0)), "handle"
+    yield "stopped early", deform.summary_line({"converged": 0.0, "iterations": 40, "handle_error_max_rel": 0.01}), "deform again"
     yield "no surface", _error(lambda: extract_mesh(far, np.full(3, -0.5), np.full(3, 0.5), 16)), "gentler setting"
     yield "keep topology too far", _error(lambda: smooth.project_vertices(tiny, _sphere(0.45), "smooth")), "Keep topology"
     yield "absurd size", _error(lambda: validate_mesh(TriangleMesh(_sphere().vertices * 1e9, _sphere().faces))), "scale"

@@ -1,123 +1,90 @@
-"""Stretch, bend, volume and handle energies against closed forms; mesh distortion measures against trimesh."""
+"""Elastic energy and lattice map against closed forms and numpy's SVD; mesh distortion measures against trimesh."""
 
 import math
 
 import numpy as np
-import pytest
-import torch
 
-from isoclay.energies.bend import bend_density, mean_curvature_of, shape_operator_deformed, shape_operator_input
-from isoclay.energies.handles import handle_energy, handle_errors
+from isoclay.energies.elastic import Constraints, ElasticSystem, polar_rotation, volume_projection
 from isoclay.energies.mesh_distortion import distortion, edge_bend, face_stretch, flipped_faces
-from isoclay.energies.stretch import pushforward, stretch_density, stretch_value, tangent_frames, tangent_metric
-from isoclay.energies.volume import volume_density
-from isoclay.field.analytic import CylinderSDF, SphereSDF
-from isoclay.tasks import deform
-from isoclay.warp import ResidualWarp, WarpConfig
+from isoclay.warp.lattice import SplineLattice
 
 
-def _sphere_points(n, r, seed=0):
-    x = torch.randn(n, 3, generator=torch.Generator().manual_seed(seed))
-    return x / x.norm(dim=1, keepdim=True) * r
+def _box(half):
+    half = np.asarray(half, dtype=np.float64)
+
+    def values(p):
+        q = np.abs(p) - half
+        return np.linalg.norm(np.maximum(q, 0), axis=1) + np.minimum(q.max(axis=1), 0)
+
+    return values
 
 
-def _linear_warp(matrix) -> ResidualWarp:
-    """A one-block warp d(y) = M y exactly (hidden branch switched off, linear skip = M - I)."""
-    warp = ResidualWarp(WarpConfig(blocks=1), seed=0)
-    with torch.no_grad():
-        warp.blocks[0].out_weight[:, -3:] = torch.as_tensor(matrix, dtype=torch.float32) - torch.eye(3)
-    for p in warp.parameters():
-        p.requires_grad_(False)
-    return warp
+def _no_constraints():
+    z = np.zeros((0, 3))
+    return Constraints(z, z, np.zeros(0), z, np.zeros((0, 3, 3)), np.zeros(0))
 
 
-@pytest.mark.parametrize("s", [0.8, 1.25])
-def test_uniformly_scaled_sphere(s):
-    # A sphere of radius r scaled by s: the first fundamental form becomes s^2 times the old
-    # one, so the metric's stretch is s^2 - 1 in every tangent direction, and the mean
-    # curvature 1/r becomes 1/(s r) (do Carmo 1976, "Differential Geometry of Curves and
-    # Surfaces", sec. 2-5 and 3-3, sphere example). Here d(y) = y / s maps deformed to input.
-    # Computed through the whole chain (warp jets, pushforward, shape operators).
-    # Tolerance 1e-4 relative (float32).
-    r = 0.3
-    field = SphereSDF(r)
-    p = _sphere_points(300, r)
-    surface = deform._surface_data(field, p)
-    warp = _linear_warp(torch.eye(3) / s)
-    y = warp.inverse(p).points
-    np.testing.assert_allclose(y.numpy(), (p * s).numpy(), rtol=1e-5, atol=1e-6)
-    parts = deform._energy_parts(warp, surface, y)
-    eig = torch.linalg.eigvalsh(parts.metric)
-    np.testing.assert_allclose(eig.numpy(), s * s, rtol=1e-4)
-    np.testing.assert_allclose(stretch_value(parts.metric).numpy(), abs(s * s - 1), rtol=1e-3, atol=1e-5)
-    np.testing.assert_allclose(stretch_density(parts.metric).numpy(), 2 * (s * s - 1) ** 2, rtol=1e-3, atol=1e-6)
-    np.testing.assert_allclose(mean_curvature_of(surface.shape_before).numpy(), 1 / r, rtol=1e-4)
-    np.testing.assert_allclose(mean_curvature_of(parts.shape_after).numpy(), 1 / (s * r), rtol=1e-4)
-    # both principal curvatures change by 1/(s r) - 1/r: ||dS||_F^2 = 2 (1/(s r) - 1/r)^2
-    np.testing.assert_allclose(parts.bend.numpy(), 2 * (1 / (s * r) - 1 / r) ** 2, rtol=1e-3)
-    # volume: det J_d = s^-3 (change of variables), so (log det)^2 = (3 log s)^2
-    np.testing.assert_allclose(parts.volume.numpy(), (3 * math.log(s)) ** 2, rtol=1e-4)
+def test_polar_rotation_matches_the_svd_and_keeps_rotations():
+    # Reference: the orthogonal polar factor U V^T from numpy's SVD with the reflection removed
+    # (Higham 1986). Random near-rotations and some inverted matrices; tolerance 1e-10.
+    rng = np.random.default_rng(0)
+    q, _ = np.linalg.qr(rng.normal(size=(400, 3, 3)))
+    q[np.linalg.det(q) < 0, :, 0] *= -1
+    s = q @ (np.eye(3) + 0.3 * rng.normal(size=(400, 3, 3)))
+    u, _, vt = np.linalg.svd(s)
+    flip = np.linalg.det(u @ vt) < 0
+    u[flip, :, 2] *= -1
+    np.testing.assert_allclose(polar_rotation(s), u @ vt, atol=1e-10)
+    np.testing.assert_allclose(polar_rotation(q), q, atol=1e-12)
 
 
-def test_rigid_motion_costs_nothing():
-    # A rotation preserves both fundamental forms (do Carmo 1976, sec. 4-2, isometries).
-    # Energies must vanish to float round-off (1e-10) on a cylinder, whose shape operator
-    # has principal curvatures 1/r and 0 (do Carmo 1976, sec. 3-3, cylinder example).
-    r = 0.2
-    field = CylinderSDF(r)
-    angle = torch.rand(200, generator=torch.Generator().manual_seed(1)) * 2 * math.pi
-    z = torch.rand(200, generator=torch.Generator().manual_seed(2)) - 0.5
-    p = torch.stack([r * torch.cos(angle), r * torch.sin(angle), z], dim=1)
-    surface = deform._surface_data(field, p)
-    k = torch.linalg.eigvalsh(0.5 * (surface.shape_before + surface.shape_before.transpose(1, 2)))
-    np.testing.assert_allclose(k[:, 1].numpy(), 1 / r, rtol=1e-4)
-    np.testing.assert_allclose(k[:, 0].numpy(), 0.0, atol=1e-3)
-    a = 0.4
-    rot = torch.tensor([[math.cos(a), 0, math.sin(a)], [0, 1, 0], [-math.sin(a), 0, math.cos(a)]])
-    warp = _linear_warp(rot.T)  # d = R^-1: the deformation is the rotation R
-    y = warp.inverse(p).points
-    parts = deform._energy_parts(warp, surface, y)
-    assert float(parts.stretch.max()) < 1e-10
-    assert float(parts.bend.max()) < 1e-6 * (1 / r) ** 2
-    assert float(parts.volume.max()) < 1e-10
+def test_volume_projection_has_determinant_one_and_leaves_rotations():
+    rng = np.random.default_rng(1)
+    s = np.eye(3) + 0.2 * rng.normal(size=(100, 3, 3))
+    s = s[np.linalg.det(s) > 0]
+    np.testing.assert_allclose(np.linalg.det(volume_projection(s)), 1.0, rtol=1e-12)
+    q, _ = np.linalg.qr(rng.normal(size=(10, 3, 3)))
+    q[np.linalg.det(q) < 0, :, 0] *= -1
+    np.testing.assert_allclose(volume_projection(q), q, atol=1e-12)
 
 
-def test_bend_sees_curvature_from_the_warp_hessian():
-    # Bending a plane z = 0 by the warp d(x, y, z) = (x, y, z - a x^2 / 2) turns it into the
-    # parabolic cylinder z = a x^2 / 2 whose curvature at the origin is a (do Carmo 1976, sec. 1-5,
-    # curvature of a graph y'' / (1 + y'^2)^(3/2)). Checked through shape_operator_deformed with the
-    # Hessian of d given in closed form. Tolerance 1e-6.
-    a = 2.0
-    n = 5
-    grad_f = torch.tensor([[0.0, 0.0, 1.0]]).repeat(n, 1)
-    hess_f = torch.zeros(n, 3, 3)
-    frames = tangent_frames(grad_f)
-    jac = torch.eye(3).repeat(n, 1, 1)  # at x = 0
-    q = torch.zeros(n, 3, 3)
-    q[:, 0, 0] = -a  # sum_i f_i H_{d_i} = H_{d_z} = diag(-a, 0, 0)
-    pushed = pushforward(jac, frames)
-    metric = tangent_metric(pushed)
-    after = shape_operator_deformed(jac, q, grad_f, hess_f, frames, pushed, metric)
-    before = shape_operator_input(grad_f, hess_f, frames)
-    # the surface f(d(x)) = z - a x^2/2 = 0 bends towards +z, i.e. concave seen from the
-    # outward side +z: principal curvatures (-a, 0) in our convention (convex positive)
-    k = torch.linalg.eigvalsh(0.5 * (after + after.transpose(1, 2)))
-    np.testing.assert_allclose(k.numpy(), np.tile([-a, 0.0], (n, 1)), atol=1e-6)
-    np.testing.assert_allclose(bend_density(before, after).numpy(), a * a, rtol=1e-6)
+def test_lattice_reproduces_affine_maps_exactly():
+    # Quadratic B-splines reproduce polynomials of degree <= 2 (de Boor, "A practical guide to
+    # splines"): with control points moved by an affine map A x + b, phi is that map everywhere
+    # and its gradient is A. Tolerance 1e-12.
+    lat = SplineLattice.build(_box([0.3, 0.1, 0.1]), [-0.3, -0.1, -0.1], [0.3, 0.1, 0.1], 0.05)
+    a = np.array([[1.1, 0.2, 0.0], [0.0, 0.9, 0.3], [0.1, 0.0, 1.0]])
+    b = np.array([0.1, -0.2, 0.3])
+    points = np.random.default_rng(2).uniform([-0.3, -0.1, -0.1], [0.3, 0.1, 0.1], size=(500, 3))
+    np.testing.assert_allclose(lat.map(lat.rest, points), points, atol=1e-12)
+    np.testing.assert_allclose(lat.map(lat.rest @ a.T + b, points), points @ a.T + b, atol=1e-12)
+    np.testing.assert_allclose(lat.jacobian(lat.rest @ a.T + b, points), np.broadcast_to(a, (500, 3, 3)), atol=1e-11)
 
 
-def test_handle_terms():
-    # Hand-computed: handle 0 exact, handle 1 off by (0, 0.3, 0.4) -> distance 0.5, mean squared 0.125.
-    h = torch.tensor([[0.0, 0.0, 0.0], [1.0, 0.0, 0.0]])
-    mapped = torch.tensor([[0.0, 0.0, 0.0], [1.0, 0.3, 0.4]])
-    assert float(handle_energy(mapped, h)) == pytest.approx(0.125, rel=1e-6)
-    np.testing.assert_allclose(handle_errors(mapped, h).numpy(), [0.0, 0.5], rtol=1e-6)
+def test_parts_a_cell_apart_share_no_control_point():
+    # Two slabs whose gap is 1.5 cells: their cells never touch, so no control point serves both
+    # (virtual nodes, Molino et al. 2004); one slab can move without dragging the other.
+    def values(p):
+        return np.minimum(_box([0.2, 0.2, 0.05])(p - [0, 0, 0.1375]), _box([0.2, 0.2, 0.05])(p + [0, 0, 0.1375]))
+
+    lat = SplineLattice.build(values, [-0.2, -0.2, -0.2], [0.2, 0.2, 0.2], 0.05)
+    top = lat.cells[:, 2] * lat.cell + lat.origin[2] > 0
+    assert not set(lat.dofs[top].ravel()) & set(lat.dofs[~top].ravel())
 
 
-def test_volume_density_signs():
-    # (log det)^2 is symmetric in growth and shrinkage: det 2 and det 1/2 give (log 2)^2 (common practice, no source).
-    j = torch.stack([torch.diag(torch.tensor([2.0, 1.0, 1.0])), torch.diag(torch.tensor([0.5, 1.0, 1.0]))])
-    np.testing.assert_allclose(volume_density(j).numpy(), math.log(2) ** 2, rtol=1e-6)
+def test_elastic_energy_of_rigid_motion_and_uniform_scale():
+    # ARAP energy sum_q w_q ||F - R||^2 (Chao et al. 2010): zero for a rigid motion; for a uniform
+    # scale s, F = s I and R = I, so E = 3 (s - 1)^2 V with V the solid's volume (0.6 x 0.2 x 0.2
+    # box, closed form). The volume term adds v ||s I - I||^2 V for the det-1 target I. Tolerance 1e-9.
+    lat = SplineLattice.build(_box([0.3, 0.1, 0.1]), [-0.3, -0.1, -0.1], [0.3, 0.1, 0.1], 0.05)
+    system = ElasticSystem(lat, _no_constraints(), volume_weight=0.5, tether=0.0)
+    c, s_ = math.cos(0.4), math.sin(0.4)
+    rot = np.array([[c, -s_, 0], [s_, c, 0], [0, 0, 1]])
+    for control, expected in [(lat.rest @ rot.T + 0.2, 0.0), (1.2 * lat.rest, 1.5 * 3 * 0.2**2 * 0.6 * 0.2 * 0.2)]:
+        target, constant = system.targets(control)
+        energy = system.energy(control, system.right_hand_side(target), constant)
+        np.testing.assert_allclose(energy, expected, atol=1e-9)
+    np.testing.assert_allclose(lat.volume, 0.6 * 0.2 * 0.2, rtol=1e-9)
 
 
 def _icosphere():

@@ -47,6 +47,12 @@ RULES = (
      "from Handles)"),
     (r"deformation diverged",
      "The deformation ran away: choose a stiffer Material or move the targets less far, then deform again"),
+    (r"targets fold the prop through itself",
+     "These targets would fold the object through itself: move the target empties less far, or add a handle on "
+     "the part between them, then deform again"),
+    (r"stopped after (\d+) iterations before settling; the handles are within ([0-9.]+%)",
+     "The deformation stopped after {1} steps before it settled (handles within {2} of the object's size): "
+     "deform again from the result, or move the targets in smaller steps"),
     (r"unknown (deform setting|parameter\(s\)|fit setting) '?([A-Za-z_]+)",
      "This solver does not know the setting '{2}' the add-on sent: install the solver and add-on of the same "
      "isoclay version"),

@@ -12,11 +12,11 @@ from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProp
 
 # Names the deform task understands; numbers behind them live in the solver.
 STIFFNESS_ITEMS = [
-    ("rubber", "Rubber", "Stretches freely; far parts barely follow"),
-    ("soft", "Soft", "Gives easily, keeps some shape"),
-    ("medium", "Medium", "Balanced between stretching and bending"),
-    ("firm", "Firm", "Resists stretching; bends as a whole"),
-    ("stiff", "Stiff", "Moves almost rigidly, bends only where it must"),
+    ("rubber", "Rubber", "Keeps its volume like rubber: bulges where squeezed; a sheet acts very thin"),
+    ("soft", "Soft", "Keeps most of its volume, like soft clay; a sheet acts thin"),
+    ("medium", "Medium", "Keeps its volume moderately, like worked metal; a sheet acts of medium thickness"),
+    ("firm", "Firm", "Lets its volume follow the bend a little more; a sheet acts thick"),
+    ("stiff", "Stiff", "A plain as-rigid-as-possible solid, volume free; a sheet acts very thick"),
 ]
 
 
@@ -90,7 +90,9 @@ def _distortion_view_changed(self, context):
 
 
 class IsoclaySceneSettings(bpy.types.PropertyGroup):
-    stiffness: EnumProperty(name="Material", description="How the shape resists the pull of the handles",
+    stiffness: EnumProperty(name="Material", description="How the solid keeps its volume where it bends or is "
+                            "squeezed (the shape a handle asks for does not depend on hardness); for a sheet with "
+                            "no inside, how thick it acts",
                             items=STIFFNESS_ITEMS, default="medium")
     keep_topology: BoolProperty(
         name="Keep topology",

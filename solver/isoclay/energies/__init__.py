@@ -1,1 +1,1 @@
-"""Energies on surfaces and warps: stretch, bend, handles, volume, curvature flows (import the submodules)."""
+"""Energies: volumetric elasticity of a lattice map, mesh distortion measures, curvature flows and feature filters (import the submodules)."""

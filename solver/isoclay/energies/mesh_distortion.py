@@ -4,7 +4,7 @@ The same measures are applied to any method's output (ours transported through t
 libigl ARAP's), so the comparison is fair:
 - stretch per face: RMS of (eigenvalues of the triangle's 2x2 metric tensor F^T F) - 1, F the
   affine map from the rest triangle (in its own orthonormal frame) to the deformed one;
-  the discrete form of energies.stretch (common practice, no source);
+  the tangent-plane stretch of the map (common practice, no source);
 - bend per edge: |change of dihedral angle| in radians (the discrete-shell bending measure,
   Grinspun et al. 2003, "Discrete Shells");
 - flipped faces: a face whose deformed normal points against its rest normal rotated by the
@@ -88,13 +88,15 @@ def flipped_faces(rest: np.ndarray, deformed: np.ndarray, faces: np.ndarray) -> 
     """(m,) bool: the deformed normal opposes the rest normal under the face neighbourhood's best rotation."""
     n_v = len(rest)
     # per-vertex covariance of incident edge vectors, rest x deformed (Kabsch 1976)
-    cov = np.zeros((n_v, 3, 3))
+    cov = np.zeros((n_v, 9))
     for a, b in ((0, 1), (1, 2), (2, 0)):
         er = rest[faces[:, b]] - rest[faces[:, a]]
         ed = deformed[faces[:, b]] - deformed[faces[:, a]]
-        outer = er[:, :, None] * ed[:, None, :]
-        np.add.at(cov, faces[:, a], outer)
-        np.add.at(cov, faces[:, b], outer)
+        outer = (er[:, :, None] * ed[:, None, :]).reshape(-1, 9)
+        for ends in (faces[:, a], faces[:, b]):
+            for k in range(9):  # bincount is many times faster than np.add.at
+                cov[:, k] += np.bincount(ends, weights=outer[:, k], minlength=n_v)
+    cov = cov.reshape(n_v, 3, 3)
     s = cov[faces[:, 0]] + cov[faces[:, 1]] + cov[faces[:, 2]]
     u, _, vt = np.linalg.svd(s)
     d = np.sign(np.linalg.det(np.transpose(vt, (0, 2, 1)) @ np.transpose(u, (0, 2, 1))))

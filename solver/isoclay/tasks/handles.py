@@ -1,8 +1,14 @@
 """Handles and targets for a deformation: reading H.json, validating, checking they sit on the surface.
 
-H.json (DESIGN.md): {"handles": [[x, y, z], ...], "targets": [[x, y, z], ...]} in the mesh's
-own units; a handle whose target equals itself stays put. Every problem is one line naming
-the handle and what to do.
+Two forms, both in the mesh's own units (DESIGN.md; docs/deformation.md):
+- points: {"handles": [[x, y, z], ...], "targets": [[x, y, z], ...]}; a handle whose target
+  equals itself stays put; the turn of a region is left free unless its points fix it.
+- groups: {"groups": [{"points": [[x, y, z], ...], "transform": 4x4}, ...]}: each group of
+  held points follows its target empty's motion, a 4 x 4 matrix (row-major nested lists,
+  column vectors: target = T @ [p, 1]), so a region can be moved, turned and scaled; the
+  identity holds the group's position and orientation. Over the wire a group's points arrive
+  as one array (the service puts them back as a (k, 3) array under "points").
+Every problem is one line naming the handle or group and what to do.
 """
 
 from __future__ import annotations
@@ -17,8 +23,13 @@ import numpy as np
 
 from ..errors import InvalidInput
 
-#: More handles than this is almost certainly a mistake (a whole mesh passed as handles).
+#: Point-form handles: more than this is almost certainly a mistake (a whole mesh passed as handles).
 MAX_HANDLES = 10_000
+#: Group form: at most this many groups (one target empty each) and points over all groups. The
+#: solver keeps at most a few points per lattice cell of each group (deform.reduce_points), so a
+#: 44k-vertex selection costs no more than a small one; beyond 200k the upload itself is the cost.
+MAX_GROUPS = 64
+MAX_GROUP_POINTS = 200_000
 #: A handle farther than this fraction of the bounding-box diagonal from the surface is refused.
 SURFACE_TOLERANCE_REL = 0.02
 
@@ -125,3 +136,98 @@ def check_on_surface(distances: np.ndarray, limit: float, units_per_length: floa
             f"(limit {limit * units_per_length:.4g}, {SURFACE_TOLERANCE_REL:.0%} of the bounding-box diagonal)"
             f"{f' and {len(bad) - 1} more' if len(bad) > 1 else ''}: pick handle points on the mesh"
         )
+
+
+@dataclass(frozen=True)
+class HandleGroup:
+    """One held region: points (k, 3) float64 and where each goes, in the caller's units.
+
+    targets : (k, 3); transform : (4, 4) float64 for the group form (targets = transform applied
+    to points), None for point-form handles, whose targets are given one by one.
+    """
+
+    points: np.ndarray
+    targets: np.ndarray
+    transform: np.ndarray | None = None
+    name: str = ""
+
+
+def _transform(value, index: int) -> np.ndarray:
+    try:
+        t = np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidInput(f"group {index}: transform must be a 4 x 4 matrix of numbers") from None
+    if t.shape == (16,):
+        t = t.reshape(4, 4)
+    if t.shape != (4, 4):
+        raise InvalidInput(f"group {index}: transform must be a 4 x 4 matrix (16 numbers), found shape {t.shape}")
+    if not np.isfinite(t).all():
+        raise InvalidInput(f"group {index}: transform has a NaN or infinite entry: give finite numbers")
+    if not np.allclose(t[3], [0.0, 0.0, 0.0, 1.0], atol=1e-9):
+        raise InvalidInput(f"group {index}: transform's last row must be 0 0 0 1 (an affine motion, no perspective)")
+    det = float(np.linalg.det(t[:3, :3]))
+    if not det > 1e-9:
+        raise InvalidInput(
+            f"group {index}: the target empty is mirrored or scaled to nothing (determinant {det:.3g}): "
+            "reset its scale to positive values"
+        )
+    return t
+
+
+def _group_points(value, index: int) -> np.ndarray:
+    if value is None:
+        raise InvalidInput(f"group {index} has no points: give the held vertices' positions as [[x, y, z], ...]")
+    if isinstance(value, (list, tuple)) and len(value) > MAX_GROUP_POINTS:
+        raise InvalidInput(f"group {index} has {len(value)} points (limit {MAX_GROUP_POINTS}): hold fewer vertices")
+    try:
+        points = np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidInput(f"group {index}: points must be a list of [x, y, z] numbers") from None
+    if points.size == 0:
+        raise InvalidInput(f"group {index} has no points: every target empty needs held vertices")
+    if points.ndim != 2 or points.shape[1] != 3:
+        raise InvalidInput(f"group {index}: points must be a list of [x, y, z] (shape (k, 3)), found shape {points.shape}")
+    if not np.isfinite(points).all():
+        raise InvalidInput(f"group {index}: a point has a NaN or infinite coordinate: give finite numbers")
+    return points
+
+
+def parse_groups(params: dict) -> tuple[HandleGroup, ...]:
+    """Validate either form (see module docstring) into handle groups, caller's units.
+
+    Point-form handles become one group without a transform. Refuses: both forms at once, no
+    handles, too many groups or points, malformed transforms (one line each).
+    """
+    if not isinstance(params, dict):
+        raise InvalidInput(f"handles must be given as an object with \"groups\" or \"handles\" and \"targets\", found {type(params).__name__}")
+    has_points = params.get("handles") is not None or params.get("targets") is not None
+    groups = params.get("groups")
+    if groups is None:
+        hs = parse_handles(params)
+        return (HandleGroup(hs.handles, hs.targets, None, "handles"),)
+    if has_points:
+        raise InvalidInput("give either \"groups\" or \"handles\" and \"targets\", not both")
+    if not isinstance(groups, (list, tuple)) or not groups:
+        raise InvalidInput("\"groups\" must be a non-empty list of {\"points\": [[x, y, z], ...], \"transform\": 4x4}")
+    if len(groups) > MAX_GROUPS:
+        raise InvalidInput(f"{len(groups)} handle groups (limit {MAX_GROUPS}): merge some groups")
+    out, total = [], 0
+    for i, g in enumerate(groups):
+        if not isinstance(g, dict):
+            raise InvalidInput(f"group {i} must be an object with \"points\" and \"transform\"")
+        unknown = set(g) - {"points", "transform", "name"}
+        if unknown:
+            raise InvalidInput(f"group {i}: unknown field {sorted(unknown)[0]!r}; a group has points, transform and name")
+        points = _group_points(g.get("points"), i)
+        if len(points) == 0:
+            raise InvalidInput(f"group {i} has no points: every target empty needs held vertices")
+        total += len(points)
+        if total > MAX_GROUP_POINTS:
+            raise InvalidInput(f"the handle groups hold more than {MAX_GROUP_POINTS} points: hold fewer vertices")
+        t = _transform(g.get("transform", np.eye(4)), i)
+        name = g.get("name", f"group {i}")
+        if not isinstance(name, str):
+            raise InvalidInput(f"group {i}: name must be text")
+        targets = points @ t[:3, :3].T + t[:3, 3]
+        out.append(HandleGroup(points, targets, t, name[:64]))
+    return tuple(out)
