@@ -48,7 +48,7 @@ def _solver_errors():
     from isoclay.field.analytic import SphereSDF
     from isoclay.field.fit import FitConfig
     from isoclay.mesh.validate import validate_mesh
-    from isoclay.service.jobs import crash_reason, JobLimits
+    from isoclay.service.crashes import Evidence, crash_reason
     from isoclay.tasks import deform, sharpen, smooth
     from isoclay.tasks.handles import check_on_surface
 
@@ -68,8 +68,11 @@ def _solver_errors():
     bad[3] = np.nan
     yield "nan vertex", _error(lambda: validate_mesh(TriangleMesh(bad, _sphere().faces))), "Edit Mode"
     yield "field detail", _error(lambda: FitConfig(resolution=4096).validated()), "Field detail"
-    yield "out of memory", crash_reason(-9, JobLimits()), "Field detail"
-    yield "cpu limit", crash_reason(-24, JobLimits()), "Field detail"
+    limit = 4 << 30
+    yield "out of memory", crash_reason(-9, limit, Evidence(True, 300 << 20, 1)), "Field detail"
+    yield "near the memory limit", crash_reason(-9, limit, Evidence(True, int(0.95 * limit), 0)), "Field detail"
+    yield "killed from outside", crash_reason(-9, limit, Evidence(True, 300 << 20, 0)), "again"
+    yield "cpu limit", crash_reason(-24, limit, Evidence(True)), "Field detail"
 
 
 CASES = list(_solver_errors())

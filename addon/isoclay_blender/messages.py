@@ -61,8 +61,14 @@ RULES = (
     (r"needs about ([0-9.]+) GiB, the solver allows ([0-9.]+) GiB",
      "This edit needs about {1} GiB, more than the solver allows ({2} GiB): lower Field detail, decimate the "
      "object, or start the solver with a higher memory limit"),
-    (r"out of memory|killed \(SIGKILL\)",
+    (r"killed \(SIGKILL\) by another process",
+     "The solver's worker was stopped from outside (not for lack of memory): press the button again; if it keeps "
+     "happening, check what stops processes on the solver's machine"),
+    (r"ran out of memory|most likely for memory|out of memory",
      "The solver ran out of memory on this object: lower Field detail or Surface detail, or decimate the object"),
+    (r"killed \(SIGKILL\)",
+     "The solver's worker was stopped (perhaps for memory): try again; if it repeats, lower Field detail or "
+     "decimate the object"),
     (r"time limit|CPU-time limit",
      "The edit took longer than the solver allows: lower Field detail or Surface detail, or start the solver "
      "with a longer time limit"),
@@ -77,6 +83,8 @@ RULES = (
      "The object has no faces with area: the solver needs a surface (fill holes or add faces first)"),
     (r"is too large \((\d+) vertices, (\d+) faces",
      "The object is too large ({1} vertices): decimate it first (Decimate modifier)"),
+    (r"fit resolution (\d+) is out of range: use (\d+) to (\d+)",
+     "Field detail {1} is outside what this solver accepts ({2} to {3}): change it in the Reshape panel"),
     (r"field resolution (\d+) out of range: use (\d+)\.\.(\d+)",
      "Field detail {1} is outside what this solver accepts ({2} to {3}): change it in the Reshape panel"),
     (r"resolution .* out of range",

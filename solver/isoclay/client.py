@@ -2,7 +2,8 @@
 
 No bpy, no torch: the Blender add-on build copies this file and wire.py verbatim (they import each
 other relatively). Every call returns or raises within a bounded time, so Blender never freezes;
-``poll`` returns within about 50 ms. See docs/wire.md.
+``poll`` returns within about 50 ms. Only replies signed with the connection file's key count;
+the socket logs in with the admission password (or CURVE keys) the solver asks for. See docs/wire.md.
 """
 
 from __future__ import annotations
@@ -24,11 +25,13 @@ class ClientError(Exception):
 
 
 class SolverUnreachable(ClientError):
-    """No reply after the bounded retries."""
+    """No trusted reply after the bounded retries: nothing answered, or only replies that are not
+    signed with our key (which anyone can send, so they never count as an answer)."""
 
 
 class KeyRejected(ClientError):
-    """The solver could not verify our signature: wrong or stale key."""
+    """Our key is known to be the problem: the solver said so over CURVE (which proves it is the
+    solver named in the connection file), or the connection file now holds another key."""
 
 
 class RemoteError(ClientError):
@@ -127,7 +130,10 @@ class SolverClient:
     def __init__(self, connection, timeout_s: float = 5.0, retries: int = 3, poll_timeout_s: float = 0.05):
         info = load_connection(connection)
         self.endpoint = info["endpoint"]
+        self._path = None if isinstance(connection, dict) else os.path.expanduser(os.fspath(connection))
+        self._key_hex = info["key"]
         self._key = wire.key_bytes(info["key"])
+        self._untrusted = 0  # replies in the current request that our key does not sign
         self._curve = (info.get("curve_server_public"), info.get("curve_client_public"),
                        info.get("curve_client_secret"))
         self.timeout_s = float(timeout_s)
@@ -155,10 +161,15 @@ class SolverClient:
         s.setsockopt(zmq.HEARTBEAT_TIMEOUT, 5000)
         s.setsockopt(zmq.RECONNECT_IVL, 100)
         s.setsockopt(zmq.RECONNECT_IVL_MAX, 2000)
+        if self.endpoint.startswith("tcp://["):
+            s.setsockopt(zmq.IPV6, 1)
         if all(self._curve):
             s.curve_serverkey = self._curve[0].encode()
             s.curve_publickey = self._curve[1].encode()
             s.curve_secretkey = self._curve[2].encode()
+        else:  # the solver admits only clients that know the connection file (wire.admission_password)
+            s.plain_username = wire.ADMISSION_USER.encode()
+            s.plain_password = wire.admission_password(self._key).encode()
         s.connect(self.endpoint)
         self._sock = s
 
@@ -203,12 +214,18 @@ class SolverClient:
             if remaining < 0 or not self._sock.poll(max(0, remaining), zmq.POLLIN):
                 return None
             frames = self._sock.recv_multipart(copy=False)
-            rejected = wire.peek_unsigned_error(frames)
-            if rejected is not None:
-                raise KeyRejected(rejected or "the solver rejected our signature: use its current connection file")
             try:
                 msg = wire.decode(self._key, frames, wire.REPLIES)
             except wire.WireError as exc:
+                if exc.code == "bad_signature":
+                    # Not signed with our key: anyone can send that, so it is ignored, never an answer.
+                    # Over CURVE only the solver of the connection file can talk to us at all, so
+                    # its "bad signature" is believed.
+                    self._untrusted += 1
+                    if all(self._curve) and wire.peek_unsigned_error(frames) is not None:
+                        raise KeyRejected("the solver could not verify our signature: the connection file's "
+                                          "key is out of date; use the solver's current connection file") from None
+                    continue
                 # The signature is checked first, so these come from the real solver: say what is wrong.
                 if exc.code == "stale_clock":
                     raise ClientError("this machine's clock and the solver's differ by more than "
@@ -234,6 +251,7 @@ class SolverClient:
         timeout_s = self.timeout_s if timeout_s is None else timeout_s
         retries = self.retries if retries is None else retries
         pending = self._encode(kind, body, arrays, digests)
+        self._untrusted = 0
         for attempt in range(retries + 1):
             deadline = time.monotonic() + timeout_s
             if self._send(pending, deadline):
@@ -241,8 +259,26 @@ class SolverClient:
                 if msg is not None:
                     return self._check_reply(kind, body, arrays, msg, timeout_s, digests)
             self._build_socket()
-        raise SolverUnreachable(f"no reply from the solver at {self.endpoint} after {retries + 1} tries of "
-                                f"{timeout_s:g} s: start it with `isoclay serve` or check the endpoint")
+        raise self._unreachable(f"no reply from the solver at {self.endpoint} after {retries + 1} tries of "
+                                f"{timeout_s:g} s: start it with `isoclay serve`, or check that the connection "
+                                "file is the solver's current one (a solver admits only clients with its key)")
+
+    def _unreachable(self, text: str) -> ClientError:
+        """The error for "no trusted reply": KeyRejected if the connection file's key changed since we
+        read it, else SolverUnreachable (saying so when untrusted replies came instead)."""
+        if self._path is not None:
+            try:
+                current = load_connection(self._path).get("key")
+            except ClientError:
+                current = None
+            if current is not None and current != self._key_hex:
+                return KeyRejected(f"the connection file {self._path} now holds another key (the solver restarted "
+                                   "with a new one): connect again to use it")
+        if self._untrusted:
+            return SolverUnreachable(f"the program at {self.endpoint} answered {self._untrusted} time(s) without "
+                                     "this connection file's signature (untrusted replies, ignored): it may not be "
+                                     "the solver; restart the solver and use its current connection file")
+        return SolverUnreachable(text)
 
     def _check_reply(self, kind, body, arrays, msg, timeout_s, digests):
         if msg.type != "error":
@@ -331,8 +367,10 @@ class SolverClient:
         if silent > self.timeout_s * (self.retries + 1):
             self._last_contact = time.monotonic()
             self._build_socket()
-            raise SolverUnreachable(f"the solver at {self.endpoint} has not answered for {silent:.0f} s: "
-                                    "it may have stopped; restart it and resubmit")
+            error = self._unreachable(f"the solver at {self.endpoint} has not answered for {silent:.0f} s: "
+                                      "it may have stopped; restart it and resubmit")
+            self._untrusted = 0
+            raise error
         if silent > self.timeout_s:
             self._build_socket()  # Lazy Pirate: a fresh socket for the next try
         cached = dict(self._jobs.get(job_id) or {"job_id": job_id, "state": "queued", "stage": "", "fraction": 0.0,

@@ -29,9 +29,13 @@ PROTOCOL = 1
 SIGNATURE_BYTES = 32
 #: Limits checked before any array is looked at.
 MAX_HEADER_BYTES = 4 << 20
-MAX_ARRAYS = 64
+#: 64 handle groups (one frame each) + vertices + faces + per-vertex values and correspondence.
+MAX_ARRAYS = 80
 MAX_DIM = 20_000_000
 MAX_MESSAGE_BYTES = 2 << 30
+#: Largest single frame: (20,000,000, 3) float64 vertices are 480 MB. Also set as the socket's
+#: ZMQ_MAXMSGSIZE, which ZeroMQ applies to each frame (not to a whole message).
+MAX_FRAME_BYTES = 512 << 20
 MAX_STR = 4096
 MAX_DEPTH = 8
 MAX_ITEMS = 100_000
@@ -106,6 +110,20 @@ def key_bytes(key) -> bytes:
 
 def is_hex64(text) -> bool:
     return isinstance(text, str) and bool(_HEX64.match(text))
+
+
+#: ZeroMQ PLAIN user name of every client of a solver without CURVE (see admission_password).
+ADMISSION_USER = "isoclay"
+
+
+def admission_password(key: bytes) -> str:
+    """The PLAIN password a client must give before the solver reads any of its messages.
+
+    Derived from the signing key (HMAC-SHA256 with a fixed label, 64 hex), so only holders of
+    the connection file can connect, while the key itself never travels (PLAIN sends the
+    password in clear, which on loopback only the machine's administrator can watch).
+    """
+    return hmac.new(key, b"isoclay-admission-1", hashlib.sha256).hexdigest()
 
 
 _POOL: ThreadPoolExecutor | None = None
@@ -422,8 +440,9 @@ def decode(key: bytes, frames, schema: dict, *, now: float | None = None) -> Mes
         raise WireError(f"message has {len(frames)} frames (limit {MAX_ARRAYS + 2})", "bad_message")
     views = [memoryview(f) for f in frames]
     total = sum(v.nbytes for v in views)
-    if total > MAX_MESSAGE_BYTES:
-        raise WireError(f"message of {total} bytes exceeds {MAX_MESSAGE_BYTES}: decimate the mesh", "bad_message")
+    if total > MAX_MESSAGE_BYTES or any(v.nbytes > MAX_FRAME_BYTES for v in views):
+        raise WireError(f"message of {total} bytes (limit {MAX_MESSAGE_BYTES}, {MAX_FRAME_BYTES} per frame): "
+                        "decimate the mesh", "bad_message")
     if views[0].nbytes != SIGNATURE_BYTES or views[1].nbytes > MAX_HEADER_BYTES:
         raise WireError("signature check failed (malformed signature frame)", "bad_signature")
     if not hmac.compare_digest(bytes(views[0]), sign(key, views[1])):

@@ -195,7 +195,11 @@ def test_status_line_for_wrong_key_and_dead_endpoint(addon, solver, tmp_path):
     path.chmod(0o600)
     link = addon.solver_process.SolverLink(mod, ping_timeout_s=1.0)
     link.use_shared(str(path))
-    assert link.wait_ready(timeout_s=20) == "key rejected", link.detail
+    # on loopback a wrong key fails the solver's login, so nothing signed comes back: the panel says
+    # unreachable and points at the connection file, never a key rejection built on an unsigned
+    # reply (issue 16, item 5)
+    assert link.wait_ready(timeout_s=20) == "unreachable", link.detail
+    assert "connection file" in link.detail
 
     with socket.socket() as s:  # a port nobody listens on
         s.bind(("127.0.0.1", 0))

@@ -2,13 +2,9 @@
 
 from __future__ import annotations
 
-import json
 import os
-import signal
-import subprocess
 import sys
 import threading
-import time
 from pathlib import Path
 
 import numpy as np
@@ -18,6 +14,7 @@ SOLVER = ROOT / "solver"
 if str(SOLVER) not in sys.path:
     sys.path.insert(0, str(SOLVER))
 
+from isoclay.bench.service import ServerLauncher, admitted_dealer  # noqa: E402,F401
 from isoclay.service.jobs import JobLimits  # noqa: E402
 from isoclay.service.server import Server, ServerConfig  # noqa: E402
 
@@ -37,50 +34,9 @@ def icosphere(subdivisions: int = 2):
     return np.asarray(m.vertices, np.float64), np.asarray(m.faces, np.int64)
 
 
-class ServerProcess:
-    """`python -m isoclay.service.server` in a subprocess on 127.0.0.1, for restart and kill -9 tests."""
-
-    def __init__(self, tmp: Path, extra=()):
-        self.tmp = Path(tmp)
-        self.connection = self.tmp / "run" / "solver.json"
-        self.data = self.tmp / "data"
-        self.extra = list(extra)
-        self.proc = None
-
-    def start(self, timeout: float = 20.0) -> dict:
-        old = self.connection.read_text() if self.connection.exists() else None
-        env = dict(os.environ, PYTHONPATH=str(SOLVER))
-        self.proc = subprocess.Popen(
-            [sys.executable, "-m", "isoclay.service.server", "--data-dir", str(self.data), "--connection-file",
-             str(self.connection), "--test-params", "--memory-limit", "2", *self.extra],
-            env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            if self.connection.exists():
-                text = self.connection.read_text()
-                if text != old and text.strip():
-                    info = json.loads(text)
-                    if info["pid"] == self.proc.pid:
-                        return info
-            if self.proc.poll() is not None:
-                raise RuntimeError(f"server exited: {self.proc.stderr.read().decode()[-500:]}")
-            time.sleep(0.02)
-        raise RuntimeError("server did not write its connection file in time")
-
-    def kill9(self) -> None:
-        os.kill(self.proc.pid, signal.SIGKILL)
-        self.proc.wait()
-
-    def stop(self) -> None:
-        if self.proc and self.proc.poll() is None:
-            self.proc.terminate()
-            try:
-                self.proc.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                self.proc.kill()
-                self.proc.wait()
-        if self.proc and self.proc.stderr:
-            self.proc.stderr.close()
+#: `python -m isoclay.service.server` in a subprocess on 127.0.0.1, for restart and kill -9 tests (the
+#: benchmark's launcher: one launcher for both).
+ServerProcess = ServerLauncher
 
 
 class ServerThread:
@@ -101,6 +57,23 @@ class ServerThread:
     def stop(self) -> None:
         self.server.stop()
         self.thread.join(timeout=10)
+
+
+#: Modules named like standard ones: resource is imported by every worker, json by the server itself.
+PLANTED = ("resource", "json")
+
+
+def plant_modules(folder: Path) -> Path:
+    """A folder of modules named like standard ones that leave a marker when imported (and break the import)."""
+    folder.mkdir()
+    for name in PLANTED:
+        (folder / f"{name}.py").write_text(f"open({str(folder / (name + '.imported'))!r}, 'w').close()\n"
+                                           f"raise ImportError('planted {name}.py was imported')\n")
+    return folder
+
+
+def planted_markers(folder: Path) -> list[str]:
+    return sorted(p.name for p in folder.glob("*.imported"))
 
 
 def fresh_id(prefix: str = "job") -> str:

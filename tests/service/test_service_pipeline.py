@@ -9,6 +9,7 @@ import pytest
 
 from service_support import ServerThread, fresh_id, icosphere
 from isoclay.client import SolverClient
+from isoclay.history.blobs import pack_mesh
 
 pytest.importorskip("isoclay.pipeline")
 
@@ -16,12 +17,17 @@ SMALL_FIT = {"resolution": 32, "steps": 0}
 
 
 @pytest.fixture(scope="module")
-def solver(tmp_path_factory):
+def pipe(tmp_path_factory):
     srv = ServerThread(tmp_path_factory.mktemp("pipe"), memory_bytes=6 << 30, threads=1)
-    c = SolverClient(srv.connection, timeout_s=5.0, retries=1)
+    yield srv
+    srv.stop()
+
+
+@pytest.fixture(scope="module")
+def solver(pipe):
+    c = SolverClient(pipe.connection, timeout_s=5.0, retries=1)
     yield c
     c.close()
-    srv.stop()
 
 
 def _wait_for_stage(c, job, stages, limit_s=60):
@@ -34,7 +40,7 @@ def _wait_for_stage(c, job, stages, limit_s=60):
     raise AssertionError(f"job {job} never reached {stages}")
 
 
-def test_remesh_end_to_end_then_cache_hit_then_branch(solver):
+def test_remesh_end_to_end_then_cache_hit_then_branch(pipe, solver):
     v, f = icosphere(3)  # trimesh.creation.icosphere, radius 1
     job = fresh_id("remesh")
     solver.submit(job, "remesh", {"resolution": 32, "fit": SMALL_FIT}, v, f, source_key="Stone")
@@ -66,8 +72,25 @@ def test_remesh_end_to_end_then_cache_hit_then_branch(solver):
     assert nodes[-1]["parent"] == rec.node_id and nodes[-1]["current"]
     np.testing.assert_allclose(np.linalg.norm(third.vertices, axis=1), 1.0, atol=0.04)
 
+    # CONTRACTS 7: a deform keeps no result field; an edit from its node must fit the node's result mesh,
+    # not reuse the field of the shape before it. Make the branch's node look so: shrunk, no result field.
+    server = pipe.server
+    shrunk = server.blobs.put_bytes(pack_mesh(third.vertices * 0.5, third.faces))
+    server.store.db.execute("UPDATE nodes SET result_field_blob=NULL, result_blob=? WHERE node_id=?",
+                            (shrunk, third.node_id))
+    after = fresh_id("branch")
+    solver.branch_from(third.node_id, after, "remesh", {"resolution": 24, "fit": SMALL_FIT}, "Stone")
+    assert solver.wait(after, timeout_s=120)["state"] == "done"
+    fourth = solver.result(after)
+    assert "fit" in fourth.report["seconds"]  # fitted afresh from the node's result
+    # Analytic sphere of radius 0.5 now; a 24-cell grid over the diameter 1 lands within a cell (1/24).
+    np.testing.assert_allclose(np.linalg.norm(fourth.vertices, axis=1), 0.5, atol=0.045)
 
-def test_bad_task_parameters_fail_the_job_with_one_line(solver):
+
+def test_bad_task_parameters_fail_the_job_with_one_line_while_the_checker_loads(pipe, solver, monkeypatch):
+    # Submit-time refusals: test_service_limits.py. In the first seconds after a start the checker is
+    # still loading; the job is then queued unchecked and its worker refuses it with the same line.
+    monkeypatch.setattr(pipe.server.jobs.checker, "ready", lambda: False)
     v, f = icosphere(1)
     job = fresh_id("bad")
     solver.submit(job, "remesh", {"resolution": 3, "fit": SMALL_FIT}, v, f, source_key="Bad")

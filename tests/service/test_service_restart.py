@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import time
 
-from service_support import ServerProcess, fresh_id, tetrahedron
+from pathlib import Path
+
+from service_support import ServerProcess, fresh_id, plant_modules, planted_markers, tetrahedron
 from isoclay.bench.service import check_store, kill9_cycles
 from isoclay.client import SolverClient
 
@@ -55,7 +57,7 @@ def test_server_restart_mid_job_is_noticed_and_the_job_resumes_idempotently(tmp_
 def test_interrupted_jobs_are_listed_as_interrupted_after_a_crash(tmp_path):
     srv = ServerProcess(tmp_path)
     srv.start()
-    c = SolverClient(str(srv.connection), timeout_s=1.0, retries=1)
+    c = SolverClient(str(srv.connection), timeout_s=2.0, retries=1)  # polls wait out the restart (~1-2 s)
     try:
         v, f = tetrahedron()
         job = fresh_id()
@@ -100,8 +102,13 @@ def test_isoclay_serve_through_the_cli_and_graceful_stop(tmp_path):
     bad = subprocess.run([sys.executable, "-m", "isoclay.cli", "serve", "--endpoint", "tcp://0.0.0.0:5599",
                           "--data-dir", str(tmp_path / "d0")], env=env, capture_output=True, text=True, timeout=120)
     assert bad.returncode == 2 and "CURVE" in bad.stderr and len(bad.stderr.strip().splitlines()) == 1
-    proc = subprocess.Popen([sys.executable, "-m", "isoclay.cli", "serve", "--data-dir", str(tmp_path / "d"),
-                             "--connection-file", str(conn), "--test-params"], env=env,
+    # The console script, as artists run it, from a folder holding modules named like standard ones:
+    # it re-executes itself without torch, and neither that server nor its workers import them.
+    script = Path(sys.executable).with_name("isoclay")
+    command = [str(script)] if script.exists() else [sys.executable, "-P", "-m", "isoclay.cli"]
+    folder = plant_modules(tmp_path / "studio")
+    proc = subprocess.Popen([*command, "serve", "--data-dir", str(tmp_path / "d"), "--connection-file", str(conn),
+                             "--test-params"], env=env, cwd=folder,
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     try:
         deadline = time.monotonic() + 60
@@ -113,6 +120,8 @@ def test_isoclay_serve_through_the_cli_and_graceful_stop(tmp_path):
         assert "libtorch" not in maps  # the server process stays free of torch (workers import it)
         v, f = tetrahedron()
         c.submit("cli-job", "echo", {"delay_s": 30.0}, v, f, source_key="cli")
+        while c.poll("cli-job")["stage"] in ("", "starting"):  # the worker is running its own code
+            time.sleep(0.05)
         c.close()
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=20) == 0
@@ -121,6 +130,7 @@ def test_isoclay_serve_through_the_cli_and_graceful_stop(tmp_path):
             proc.kill()
             proc.wait()
         proc.stderr.close()
+    assert planted_markers(folder) == []
     from isoclay.history.store import HistoryStore
 
     store = HistoryStore(tmp_path / "d" / "history.sqlite3")

@@ -152,9 +152,7 @@ def fuzz_server(count: int, seed: int = 1, workdir: Path | None = None) -> dict:
         thread = threading.Thread(target=server.serve_forever, daemon=True)
         thread.start()
         ctx = zmq.Context()
-        sock = ctx.socket(zmq.DEALER)
-        sock.setsockopt(zmq.LINGER, 0)
-        sock.connect(server.endpoint)
+        sock = admitted_dealer(ctx, server.endpoint, server.key)
         rng = np.random.default_rng(seed)
         key = server.key
         base = valid_messages(key, rng, session=wire.new_id())
@@ -191,20 +189,33 @@ def fuzz_server(count: int, seed: int = 1, workdir: Path | None = None) -> dict:
 # ---------------------------------------------------------------- server launcher and kill -9 cycles
 
 class ServerLauncher:
-    """`python -m isoclay.service.server` as a subprocess on 127.0.0.1 (test parameters on)."""
+    """`python -m isoclay.service.server` as a subprocess on 127.0.0.1 (test parameters on).
 
-    def __init__(self, root: Path, extra=()):
+    root : folder for the connection file (root/run), data (root/data) and the server's standard
+    error (root/server.log); cwd : the folder it starts in (default: this process's);
+    safe_path : start with -P as launchers should (False: plain `python -m`, which the server corrects itself)
+    """
+
+    def __init__(self, root: Path, extra=(), cwd: Path | None = None, safe_path: bool = True):
         self.root = Path(root)
         self.connection = self.root / "run" / "solver.json"
         self.data = self.root / "data"
+        self.log = self.root / "server.log"
         self.extra = list(extra)
+        self.cwd = cwd
+        self.safe_path = safe_path
         self.proc = None
 
     def start(self, timeout: float = 30.0) -> dict:
-        env = dict(os.environ, PYTHONPATH=str(SOLVER_ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
-        self.proc = subprocess.Popen([sys.executable, "-m", "isoclay.service.server", "--data-dir", str(self.data),
-                                      "--connection-file", str(self.connection), "--test-params", "--memory-limit", "2",
-                                      *self.extra], env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in (str(SOLVER_ROOT), os.environ.get("PYTHONPATH"))
+                                                          if p))
+        self.root.mkdir(parents=True, exist_ok=True)
+        with open(self.log, "ab") as log:
+            python = [sys.executable, "-P"] if self.safe_path else [sys.executable]
+            self.proc = subprocess.Popen([*python, "-m", "isoclay.service.server", "--data-dir", str(self.data),
+                                          "--connection-file", str(self.connection), "--test-params",
+                                          "--memory-limit", "2", *self.extra], env=env, cwd=self.cwd,
+                                         stdout=subprocess.DEVNULL, stderr=log)
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             try:
@@ -214,7 +225,8 @@ class ServerLauncher:
             except (OSError, ValueError):
                 pass
             if self.proc.poll() is not None:
-                raise RuntimeError(f"solver exited with code {self.proc.returncode} during start-up")
+                tail = self.log.read_text(errors="replace").strip().splitlines()[-1:] if self.log.exists() else []
+                raise RuntimeError(f"solver exited with code {self.proc.returncode} during start-up: {tail}")
             time.sleep(0.02)
         raise RuntimeError("solver did not write its connection file in time")
 
@@ -231,6 +243,105 @@ class ServerLauncher:
             except subprocess.TimeoutExpired:
                 self.proc.kill()
                 self.proc.wait()
+
+
+def admitted_dealer(ctx, endpoint: str, key: bytes):
+    """A bare DEALER that logs in like a client of the connection file (for hand-made frames)."""
+    import zmq
+
+    sock = ctx.socket(zmq.DEALER)
+    sock.setsockopt(zmq.LINGER, 0)
+    sock.plain_username = wire.ADMISSION_USER.encode()
+    sock.plain_password = wire.admission_password(key).encode()
+    sock.connect(endpoint)
+    return sock
+
+
+# ---------------------------------------------------------------- memory held for unauthenticated peers
+
+def resident(pid: int) -> tuple[int, int]:
+    """(current, peak) resident bytes of a process (VmRSS, VmHWM from /proc, Linux)."""
+    fields = {}
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        name, _, value = line.partition(":")
+        if name in ("VmRSS", "VmHWM"):
+            fields[name] = int(value.split()[0]) * 1024
+    return fields["VmRSS"], fields["VmHWM"]
+
+
+def reset_peak(pid: int) -> bool:
+    """Reset a process's VmHWM to its current RSS (Linux 4.0+: write 5 to clear_refs); False if refused."""
+    try:
+        Path(f"/proc/{pid}/clear_refs").write_text("5")
+        return True
+    except OSError:
+        return False
+
+
+def send_big_message(endpoint: str, gib: float, key: bytes | None = None, frame_mib: int = 128,
+                     wait_s: float = 10.0) -> dict:
+    """One multipart message of ``gib`` GiB in frames of frame_mib MiB (one zero buffer, sent without copies).
+
+    key None : a plain ZeroMQ peer that never read the connection file; else a peer admitted with
+    the key's password whose frames are signed with another key (a stale connection file).
+    Returns whether any reply came within wait_s.
+    """
+    import zmq
+
+    frame = np.zeros(frame_mib << 20, np.uint8)
+    count = max(2, int(round(gib * 1024 / frame_mib)))
+    ctx = zmq.Context()
+    if key is None:
+        sock = ctx.socket(zmq.DEALER)
+        sock.setsockopt(zmq.LINGER, 0)
+        sock.connect(endpoint)
+        frames = [frame] * count
+    else:
+        sock = admitted_dealer(ctx, endpoint, key)
+        forged = wire.encode(os.urandom(32), "ping", {}, session=wire.new_id(), seq=1)
+        frames = [*forged, *([frame] * (count - 2))]
+    try:
+        sent = True
+        try:
+            sock.send_multipart(frames, copy=False, flags=zmq.NOBLOCK)
+        except zmq.Again:
+            sent = False
+        replied = bool(sock.poll(int(wait_s * 1000)))
+    finally:
+        sock.close(linger=0)
+        ctx.term()
+    return {"frames": count, "queued": sent, "replied": replied}
+
+
+def message_memory(gib: float = 3.0, admitted: bool = False, workdir: Path | None = None, wait_s: float = 10.0) -> dict:
+    """Resident memory of a solver process around one huge message from a peer without the key.
+
+    admitted False : the peer never read the connection file (refused in the handshake);
+    True : it holds the admission password but signs with another key (ZeroMQ still hands over
+    only whole messages, so the peak shows one message; afterwards nothing may stay referenced).
+    """
+    from ..client import SolverClient
+
+    with tempfile.TemporaryDirectory(dir=workdir) as tmp:
+        launcher = ServerLauncher(Path(tmp))
+        info = launcher.start()
+        pid = launcher.proc.pid
+        try:
+            client = SolverClient(info, timeout_s=5.0, retries=1)
+            client.ping()
+            before, _ = resident(pid)
+            peak_reset = reset_peak(pid)
+            outcome = send_big_message(info["endpoint"], gib, wire.key_bytes(info["key"]) if admitted else None,
+                                       wait_s=wait_s)
+            time.sleep(0.5)
+            after, peak = resident(pid)
+            answers = client.ping()["boot_id"] == info["boot_id"]
+            client.close()
+        finally:
+            launcher.stop()
+    return {"message_gib": gib, "admitted_peer": admitted, **outcome, "rss_before_mib": before / 2**20,
+            "peak_rise_mib": (peak - before) / 2**20 if peak_reset else None,
+            "rise_after_mib": (after - before) / 2**20, "server_answers_after": answers}
 
 
 def check_store(data_dir: Path) -> dict:
@@ -502,6 +613,10 @@ def run(quick: bool) -> dict:
     out["fuzz_decode"] = fuzz_decode(20_000 if quick else 100_000)
     out["fuzz_server"] = fuzz_server(5_000 if quick else 100_000)
     out["kill9"] = kill9_cycles(20 if quick else 200)
+    # A peer without the connection file: refused in the handshake, so the message never lands.
+    out["unauthenticated_message"] = message_memory(1.0 if quick else 3.0)
+    # A peer with the admission password but another signing key: one message is held while read, then freed.
+    out["wrongly_signed_message"] = message_memory(1.0, admitted=True)
     out["roundtrip"] = roundtrip_overhead(200_000, repeats=5 if quick else 15)
     out["control_latency"] = control_latency(100 if quick else 400)
     out["seconds"] = time.perf_counter() - t0

@@ -52,12 +52,30 @@ class FitConfig:
     seed: int = 0
 
     def validated(self) -> "FitConfig":
+        """This config if every setting is in its documented range (docs/parameters.md), else InvalidInput (one line)."""
+        from .. import bounds
+
         if self.architecture not in ("spline", "mlp"):
-            raise InvalidInput(f"unknown field architecture {self.architecture!r}: use 'spline' or 'mlp'")
-        if not 16 <= self.resolution <= 512:
-            raise InvalidInput(f"field resolution {self.resolution} out of range: use 16..512")
-        if self.steps < 0:
-            raise InvalidInput(f"fit steps {self.steps} must be >= 0")
+            raise InvalidInput(f"unknown field architecture {bounds.shown(self.architecture)}: use 'spline' or 'mlp'")
+        # 16 cells: coarser turns a prop into a blob; 1024: (1024+3)^3 float32 coefficients are 4.3 GB,
+        # past any worker's memory limit (the pre-flight estimate refuses most jobs long before)
+        bounds.whole_number("fit resolution", self.resolution, 16, 1024, "cells")
+        # below half a cell the band misses nodes whose trilinear estimate is off; 8 cells already
+        # queries about four times the nodes of the default 2 for the same surface
+        bounds.number("fit band", self.band, 0.5, 8.0, "cells")
+        # 100,000 Adam steps at 65-130 ms each (FACTS, one thread) are 2-4 hours, past the 1 h job limit
+        bounds.whole_number("fit steps", self.steps, 0, 100_000)
+        # a coefficient step of 0.1 unit-box lengths is a tenth of the object: Adam diverges (default 2e-4)
+        bounds.number("fit learning_rate", self.learning_rate, 0.0, 0.1, open_low=True)
+        # 256 points give a noisy step; 65,536 is 8x the default, ~0.5 s a step and ~1 GB of graph (estimated)
+        bounds.whole_number("fit batch", self.batch, 256, 65_536, "points")
+        # exact distances cost ~15 s per million queries on a 50k-face mesh (FACTS): 5 million are
+        # over a minute before the first step, for no measured gain over the default 100,000
+        bounds.whole_number("fit near_samples", self.near_samples, 1_000, 5_000_000, "points")
+        # relative to the value term's weight 1; past 100 the fit ignores the surface it is fitting
+        bounds.number("fit eikonal_weight", self.eikonal_weight, 0.0, 100.0)
+        bounds.number("fit normal_weight", self.normal_weight, 0.0, 100.0)
+        bounds.whole_number("fit seed", self.seed, 0, 2**32 - 1)  # numpy and torch both take 32-bit seeds
         return self
 
     def to_dict(self) -> dict:

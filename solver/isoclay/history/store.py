@@ -87,8 +87,15 @@ class HistoryStore:
     def __init__(self, path):
         self.path = Path(path)
         self.path.parent.mkdir(parents=True, exist_ok=True, mode=0o700)
+        # SQLite gives its -wal and -shm files the database file's mode: make that 0600 before it opens
+        os.close(os.open(self.path, os.O_RDWR | os.O_CREAT, 0o600))
+        os.chmod(self.path, 0o600)
         self.db = sqlite3.connect(self.path, isolation_level=None, timeout=10.0, check_same_thread=False)
         self.db.execute("PRAGMA journal_mode=WAL")
+        for side in ("-wal", "-shm"):  # files left by an older version, before the mode was set
+            side_path = self.path.with_name(self.path.name + side)
+            if side_path.exists():
+                os.chmod(side_path, 0o600)
         self.db.execute("PRAGMA synchronous=FULL")
         self.db.executescript(_SCHEMA)
         row = self.db.execute("SELECT value FROM meta WHERE key='format'").fetchone()
@@ -97,7 +104,6 @@ class HistoryStore:
         elif int(row[0]) != FORMAT_VERSION:
             raise InvalidInput(f"history database {self.path} has format {row[0]}, this solver reads "
                                f"{FORMAT_VERSION}: use a matching isoclay version or another --data-dir")
-        os.chmod(self.path, 0o600)
 
     def close(self) -> None:
         self.db.close()
@@ -113,9 +119,36 @@ class HistoryStore:
         self.db.execute("INSERT OR IGNORE INTO meshes VALUES (?,?,?,?,?)", (mesh_hash, blob, n_vertices, n_faces,
                                                                            time.time()))
 
-    def mesh_blob(self, mesh_hash: str) -> str | None:
-        row = self.db.execute("SELECT blob FROM meshes WHERE mesh_hash=?", (mesh_hash,)).fetchone()
+    def mesh_blob(self, mesh_hash: str, source_prefix: str = "") -> str | None:
+        """The blob of an uploaded mesh; with source_prefix, only if a job of those sources used it."""
+        if not source_prefix:
+            row = self.db.execute("SELECT blob FROM meshes WHERE mesh_hash=?", (mesh_hash,)).fetchone()
+        else:
+            row = self.db.execute("SELECT blob FROM meshes m WHERE mesh_hash=? AND EXISTS (SELECT 1 FROM jobs j "
+                                  "WHERE j.mesh_hash=m.mesh_hash AND substr(j.source_key, 1, ?)=?)",
+                                  (mesh_hash, len(source_prefix), source_prefix)).fetchone()
         return row[0] if row else None
+
+    def mesh_in_use(self, mesh_hash: str) -> bool:
+        """True if a job that is not failed or cancelled, or a history node, started from this upload."""
+        row = self.db.execute("SELECT EXISTS (SELECT 1 FROM jobs WHERE mesh_hash=? AND state NOT IN "
+                              "('failed','cancelled')) OR EXISTS (SELECT 1 FROM nodes WHERE input_hash=?)",
+                              (mesh_hash, mesh_hash)).fetchone()
+        return bool(row[0])
+
+    def unused_meshes(self) -> list[str]:
+        """Uploads no live job (not failed or cancelled) and no node started from (e.g. left by a refused submit)."""
+        rows = self.db.execute("SELECT mesh_hash FROM meshes m WHERE NOT EXISTS (SELECT 1 FROM jobs j WHERE "
+                               "j.mesh_hash=m.mesh_hash AND j.state NOT IN ('failed','cancelled')) AND NOT EXISTS "
+                               "(SELECT 1 FROM nodes n WHERE n.input_hash=m.mesh_hash)")
+        return [r[0] for r in rows]
+
+    def forget_mesh(self, mesh_hash: str) -> str | None:
+        """Delete an upload's row (its blob file is the caller's); returns the blob it named, or None."""
+        with self._tx():
+            blob = self.mesh_blob(mesh_hash)
+            self.db.execute("DELETE FROM meshes WHERE mesh_hash=?", (mesh_hash,))
+        return blob
 
     # ---------------------------------------------------------------- jobs
 
@@ -228,9 +261,15 @@ class HistoryStore:
         return self.db.execute("PRAGMA integrity_check").fetchone()[0]
 
     def referenced_blobs(self) -> set[str]:
+        """Every blob a row names: uploads, nodes' results and fields, handle blobs in stored parameters."""
         out = {r[0] for r in self.db.execute("SELECT blob FROM meshes")}
         for row in self.db.execute("SELECT field_blob, result_field_blob, result_blob FROM nodes"):
             out.update(b for b in row if b)
+        for table in ("jobs", "nodes"):
+            for (params,) in self.db.execute(f"SELECT params FROM {table} WHERE params LIKE '%handle_blob%'"):
+                blob = json.loads(params).get("handle_blob")
+                if isinstance(blob, str):
+                    out.add(blob)
         return out
 
 

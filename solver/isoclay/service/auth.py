@@ -81,6 +81,11 @@ def is_loopback(endpoint: str) -> bool:
         return False  # an interface name or hostname: treat as public
 
 
+def is_ipv6(endpoint: str) -> bool:
+    """True for tcp://[address]:port endpoints (the socket needs ZeroMQ's IPV6 option)."""
+    return endpoint.startswith("tcp://[")
+
+
 def check_endpoint(endpoint: str, curve_ready: bool) -> str:
     if not endpoint.startswith(("tcp://", "ipc://")):
         raise InvalidInput(f"endpoint {endpoint!r} must look like tcp://127.0.0.1:PORT")
@@ -132,20 +137,43 @@ def allowed_public_keys(directory) -> list[str]:
 
 
 class Authenticator:
-    """A ZAP handler (RFC 27) admitting only allow-listed CURVE public keys."""
+    """A ZAP handler (RFC 27) that admits a connection only after its handshake proves a credential.
+
+    With CURVE: the client's public key must be on the allow-list. Without: the client must log in
+    with PLAIN and the admission password derived from the connection file's key
+    (wire.admission_password), so a process that never read the connection file cannot deliver a
+    single message, let alone make the server hold a huge one. ``rejected`` counts refusals.
+    """
 
     DOMAIN = "isoclay"
 
-    def __init__(self, context, public_keys):
-        from zmq.auth.thread import ThreadAuthenticator
-
-        self.allow_list = _AllowList(public_keys)
-        self._auth = ThreadAuthenticator(context)
+    def __init__(self, context, public_keys=None, password: str | None = None):
+        self.allow_list = _AllowList(public_keys or [])
+        self._auth = _counting_authenticator(context, self.allow_list)
         self._auth.start()
-        self._auth.configure_curve_callback(domain=self.DOMAIN, credentials_provider=self.allow_list)
+        if public_keys is not None:
+            self._auth.configure_curve_callback(domain=self.DOMAIN, credentials_provider=self.allow_list)
+        else:
+            self._auth.configure_plain(domain=self.DOMAIN, passwords={wire.ADMISSION_USER: password})
+
+    @property
+    def rejected(self) -> int:
+        return self.allow_list.rejected
 
     def stop(self) -> None:
         self._auth.stop()
+
+
+def _counting_authenticator(context, allow_list):
+    from zmq.auth.thread import ThreadAuthenticator
+
+    class Counting(ThreadAuthenticator):
+        def _authenticate_plain(self, domain, username, password):
+            allowed, reason = super()._authenticate_plain(domain, username, password)
+            allow_list.rejected += not allowed
+            return allowed, reason
+
+    return Counting(context)
 
 
 class _AllowList:

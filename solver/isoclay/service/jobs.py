@@ -4,27 +4,53 @@ The manager lives in the server's message loop (one thread): ``pump`` is called 
 turn to collect worker messages, enforce time limits, escalate cancels (cooperative first,
 terminate after ``cancel_grace_s``, kill after twice that) and notice crashed workers. A job
 is reported done only after its history node is committed (durable).
+
+Everything a submit can be refused for is checked before anything is stored: the task's own
+parameters (its Config.from_params, run by the checker process), fit settings, handle counts,
+the memory estimate and the data folder's room. Uploads that only failed or cancelled jobs
+used are removed again, and blobs nothing names are collected when no worker runs.
+
+History is scoped by owner (the client's CURVE key, see server.py): a source key is stored as
+"<owner>\\x1f<source key>", so another owner's jobs, nodes and pointers are invisible to it.
 """
 
 from __future__ import annotations
 
+import json
 import multiprocessing
 import os
-import signal
 import time
 from collections import OrderedDict, deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+
 from .. import wire
+from ..bounds import shown_bytes
 from ..estimates import estimate_memory
 from ..history.blobs import MESH_MAGIC, BlobStore, pack_mesh, unpack_arrays, unpack_mesh
 from ..history.store import HistoryStore, JobRow
-from . import handle_groups
+from . import crashes, handle_groups, processes
+from .limits import JobLimits, check_handle_counts
+from .param_check import ParamChecker
+from .storage import DataFolder
+
+__all__ = ["ECHO_TEST_PARAMS", "Job", "JobLimits", "JobManager", "ServiceError", "known_tasks"]
 
 #: Parameters the echo task accepts only when a server runs with test parameters enabled
 #: ("groups": handle groups whose received points the echo reports, for the handle-frame plumbing).
 ECHO_TEST_PARAMS = {"delay_s", "steps", "ignore_cancel", "crash", "groups"}
+#: Keys the service adds to stored parameters (not part of what a client sent).
+SERVER_PARAM_KEYS = {"handle_blob"}
+#: Separates an owner from a source key in stored source keys (refused inside client source keys).
+SCOPE_SEP = "\x1f"
+#: How often a running worker's peak memory is read (seconds).
+RSS_SAMPLE_S = 0.5
+#: A solver process (preload_checker) starts its parameter checker once it has been up this long
+#: with no job running, so loading torch there never competes with the first jobs; a submit that
+#: needs it earlier starts it at once.
+CHECKER_PRELOAD_AFTER_S = 5.0
 
 
 class ServiceError(Exception):
@@ -35,18 +61,20 @@ class ServiceError(Exception):
         self.code = code
 
 
-@dataclass
-class JobLimits:
-    """Resource limits of the service (see `isoclay serve --help`)."""
+def scoped(owner: str, source_key: str) -> str:
+    """The stored source key of an owner's object ("" owner = shared history: the key itself)."""
+    if SCOPE_SEP in source_key:
+        raise ServiceError("invalid_input", "source_key must not contain control character 0x1f: rename the object")
+    return f"{owner}{SCOPE_SEP}{source_key}" if owner else source_key
 
-    max_queue: int = 16  # queued jobs beyond the running ones; more get "busy"
-    max_workers: int = 1  # jobs running at once
-    memory_bytes: int = 8 << 30  # address-space limit of a worker process
-    time_s: float = 3600.0  # wall-clock limit of one job
-    cancel_grace_s: float = 0.8  # cooperative stop time before terminate (kill after twice this)
-    threads: int | None = None  # torch threads per worker (default: free cores)
-    cache_max_bytes: int = 2 << 30
-    test_params: bool = False  # allow echo's test knobs (delay, crash...): tests and benchmarks only
+
+def owns(owner: str, stored_source: str) -> bool:
+    return not owner or stored_source.startswith(owner + SCOPE_SEP)
+
+
+def external(stored_source: str) -> str:
+    """The source key as its owner sent it."""
+    return stored_source.split(SCOPE_SEP, 1)[1] if SCOPE_SEP in stored_source else stored_source
 
 
 @dataclass
@@ -64,11 +92,15 @@ class Job:
     started: float = 0.0
     cancel_at: float | None = None
     final: tuple | None = None
+    log_path: Path | None = None
+    evidence: crashes.Evidence = field(default_factory=crashes.Evidence)
+    oom_before: int | None = None
+    sampled: float = 0.0
 
     def as_reply(self) -> dict:
         return {"job_id": self.row.job_id, "state": self.state, "stage": self.stage, "fraction": float(self.fraction),
                 "info": self.info, "error": self.error, "node_id": self.node_id, "task": self.row.task,
-                "source_key": self.row.source_key, "warnings": list(self.warnings)}
+                "source_key": external(self.row.source_key), "warnings": list(self.warnings)}
 
 
 def known_tasks() -> set[str]:
@@ -77,8 +109,19 @@ def known_tasks() -> set[str]:
     return {"echo", *TASK_MODULES}
 
 
+def normalization_of(vertices: np.ndarray, faces: np.ndarray) -> tuple[tuple, float]:
+    """(center, scale) of mesh.Normalization.of over the vertices the faces use (numpy only, no torch)."""
+    used = np.zeros(len(vertices), bool)
+    used[np.asarray(faces).ravel()] = True
+    points = vertices[used] if used.any() else vertices
+    lo, hi = points.min(axis=0), points.max(axis=0)
+    extent = float(np.max(hi - lo))
+    return tuple(float(c) for c in (lo + hi) / 2), (1.0 / extent if extent > 0 else 1.0)
+
+
 class JobManager:
-    def __init__(self, store: HistoryStore, blobs: BlobStore, cache_root: Path, limits: JobLimits):
+    def __init__(self, store: HistoryStore, blobs: BlobStore, cache_root: Path, limits: JobLimits,
+                 data_root: Path | None = None):
         self.store = store
         self.blobs = blobs
         self.cache_root = Path(cache_root)
@@ -89,16 +132,27 @@ class JobManager:
         self.probes: OrderedDict[str, tuple] = OrderedDict()
         self.exiting: list = []  # (process, since) of workers that reported and are exiting
         self.crashes = 0
+        self.checker = ParamChecker(limits.memory_bytes)
+        self.data = DataFolder(data_root or Path(blobs.root).parent, store, blobs, self.cache_root,
+                               limits.data_max_bytes)
+        self._facts: OrderedDict[str, tuple] = OrderedDict()  # blob -> (n_vertices, n_faces, center, scale)
+        self._collect_due = True
+        self.preload_checker = False  # run_server sets it: load the checker when idle
+        self._born = time.monotonic()
 
     # ---------------------------------------------------------------- requests
 
-    def submit(self, msg: wire.Message) -> dict:
+    def submit(self, msg: wire.Message, owner: str = "") -> dict:
         body, arrays = msg.body, msg.arrays
         job_id = body["job_id"]
+        source = scoped(owner, body["source_key"])
         existing = self._job(job_id)
         if existing is not None:
+            if not owns(owner, existing.row.source_key):
+                raise ServiceError("invalid_input", f"job id {job_id!r} is taken: use a fresh id (uuid4) for a new edit")
+            self._check_same_request(existing, body, source)
             if existing.state == "interrupted":
-                return self.resume(job_id)
+                return self.resume(job_id, owner)
             return existing.as_reply()  # idempotent: never a second job or history node
         task = body["task"]
         if task not in known_tasks():
@@ -106,36 +160,51 @@ class JobManager:
         params = body["params"]
         self._check_params(task, params)
         frames = self._handle_frames(params, arrays)
+        check_handle_counts(params, arrays)
         if len(self.queue) >= self.limits.max_queue:
             raise ServiceError("busy", f"the solver's queue is full ({self.limits.max_queue} jobs): wait for a job "
                                        "to finish or cancel one")
-        source, base = body["source_key"], body["parent_node"]
+        base = body["parent_node"]
         base_row = None
         if base is not None:
             base_row = self.store.node(base)
-            if base_row is None:
+            if base_row is None or not owns(owner, base_row.source_key):
                 raise ServiceError("unknown_node", f"node {base} is not in this solver's history: list it with history")
             if base_row.source_key != source:
-                raise ServiceError("invalid_input", f"node {base} belongs to {base_row.source_key!r}, not {source!r}")
-        probe = task == "echo" and not (set(params) & ECHO_TEST_PARAMS)
-        if probe:
-            return self._echo_probe(msg, base_row)
-        if "vertices" in arrays or "faces" in arrays:
-            mesh_hash = self._store_mesh(msg)
+                raise ServiceError("invalid_input", f"node {base} belongs to {external(base_row.source_key)!r}, "
+                                                    f"not {body['source_key']!r}")
+        if task == "echo" and not (set(params) & ECHO_TEST_PARAMS):
+            return self._echo_probe(msg, base_row, source, owner)
+        upload = "vertices" in arrays or "faces" in arrays
+        if upload:
+            v, f, mesh_hash = self._checked_mesh(msg)
+            n_v, n_f = len(v), len(f)
+            center, scale = normalization_of(v, f)
         elif body["mesh_hash"] is not None:
             mesh_hash = body["mesh_hash"]
-            if self.store.mesh_blob(mesh_hash) is None:
+            blob = self.store.mesh_blob(mesh_hash, owner and owner + SCOPE_SEP)
+            if blob is None:
                 raise ServiceError("need_mesh", "the solver does not have this mesh yet: send it with the request")
+            n_v, n_f, center, scale = self._mesh_facts(blob)
         elif base_row is not None:
             mesh_hash = None  # start from the node's result mesh
+            n_v, n_f, center, scale = self._mesh_facts(base_row.result_blob)
         else:
             raise ServiceError("invalid_input", "submit needs a mesh or a parent_node to start from")
-        n_v, n_f = self._mesh_size(mesh_hash, base_row)
         need = estimate_memory(task, n_v, n_f, params)
         if need > self.limits.memory_bytes:
-            raise ServiceError("invalid_input", f"this job needs about {need / 2**30:.1f} GiB, the solver allows "
-                                                f"{self.limits.memory_bytes / 2**30:.1f} GiB: decimate the mesh, lower "
-                                                "params.fit.resolution, or raise --memory-limit")
+            allowed = shown_bytes(self.limits.memory_bytes)
+            amount = f"far more memory than the {allowed}" if need > 64 * self.limits.memory_bytes else \
+                f"about {shown_bytes(need)}, more than the {allowed}"
+            raise ServiceError("invalid_input", f"this job needs {amount} the solver allows: decimate the mesh, "
+                                                "lower params.fit.resolution, or raise --memory-limit")
+        if task != "echo":
+            verdict = self.checker.check(task, handle_groups.with_points(params, frames), center, scale)
+            if verdict is not None:
+                raise ServiceError(*verdict)
+        self.data.require_room(24 * (n_v + n_f) if upload and self.store.mesh_blob(mesh_hash) is None else 0)
+        if upload:
+            self._store_mesh(v, f, mesh_hash)
         params = handle_groups.store_frames(params, frames, self.blobs)  # durable before the row that names it
         row, _ = self.store.create_job(job_id, source, task, params, mesh_hash, base)
         job = Job(row, row.state)
@@ -144,16 +213,11 @@ class JobManager:
         self._start_queued()
         return job.as_reply()
 
-    def poll(self, job_id: str) -> dict:
-        job = self._job(job_id)
-        if job is None:
-            raise ServiceError("unknown_job", f"no job {job_id!r} on this solver: submit it (again)")
-        return job.as_reply()
+    def poll(self, job_id: str, owner: str = "") -> dict:
+        return self._owned_job(job_id, owner, "submit it (again)").as_reply()
 
-    def cancel(self, job_id: str) -> dict:
-        job = self._job(job_id)
-        if job is None:
-            raise ServiceError("unknown_job", f"no job {job_id!r} on this solver")
+    def cancel(self, job_id: str, owner: str = "") -> dict:
+        job = self._owned_job(job_id, owner)
         if job.state == "queued":
             if job_id in self.queue:
                 self.queue.remove(job_id)
@@ -166,10 +230,8 @@ class JobManager:
                 pass
         return job.as_reply()
 
-    def resume(self, job_id: str) -> dict:
-        job = self._job(job_id)
-        if job is None:
-            raise ServiceError("unknown_job", f"no job {job_id!r} on this solver")
+    def resume(self, job_id: str, owner: str = "") -> dict:
+        job = self._owned_job(job_id, owner)
         if job.state == "interrupted":
             if len(self.queue) >= self.limits.max_queue:
                 raise ServiceError("busy", "the solver's queue is full: resume later")
@@ -179,10 +241,8 @@ class JobManager:
             self._start_queued()
         return job.as_reply()
 
-    def result(self, job_id: str) -> tuple[dict, dict, dict | None]:
-        job = self._job(job_id)
-        if job is None:
-            raise ServiceError("unknown_job", f"no job {job_id!r} on this solver")
+    def result(self, job_id: str, owner: str = "") -> tuple[dict, dict, dict | None]:
+        job = self._owned_job(job_id, owner)
         if job.state in ("failed", "cancelled"):
             raise ServiceError("job_failed", f"job {job_id} {job.state}: {job.error or 'no result'}")
         if job.state != "done":
@@ -195,11 +255,11 @@ class JobManager:
             body = {"node_id": "", "job_id": job_id, "task": "echo", "metrics": {"vertices": float(len(arrays["vertices"]))},
                     "report": {"task": "echo"}, "warnings": []}
             return body, arrays, digests
-        return self.node_mesh(job.node_id)
+        return self.node_mesh(job.node_id, owner)
 
-    def node_mesh(self, node_id: str) -> tuple[dict, dict, None]:
+    def node_mesh(self, node_id: str, owner: str = "") -> tuple[dict, dict, None]:
         node = self.store.node(node_id)
-        if node is None:
+        if node is None or not owns(owner, node.source_key):
             raise ServiceError("unknown_node", f"node {node_id} is not in this solver's history")
         data = self.blobs.read(node.result_blob)
         v, f, values = unpack_mesh(data)
@@ -225,6 +285,11 @@ class JobManager:
                 self._drain(job)
                 self._conclude(job)
                 continue
+            if now - job.sampled > RSS_SAMPLE_S:
+                job.sampled = now
+                rss = crashes.peak_rss(proc.pid)
+                if rss is not None:
+                    job.evidence.peak_rss = max(rss, job.evidence.peak_rss or 0)
             if job.cancel_at is not None:
                 waited = now - job.cancel_at
                 if waited > 2 * self.limits.cancel_grace_s:
@@ -243,6 +308,12 @@ class JobManager:
             elif now - since > 5.0:
                 proc.kill()
         self._start_queued()
+        idle = not self.exiting and self.running() == 0
+        if self._collect_due and idle:
+            self._collect_due = False
+            self.data.collect()
+        if self.preload_checker and idle and self.checker.process is None and now - self._born > CHECKER_PRELOAD_AFTER_S:
+            self.checker.start()
 
     def running(self) -> int:
         return sum(1 for j in self.live.values() if j.state == "running")
@@ -256,6 +327,7 @@ class JobManager:
             proc.join(timeout=2.0)
             if proc.is_alive():
                 proc.kill()
+        self.checker.stop()
 
     # ---------------------------------------------------------------- internals
 
@@ -272,6 +344,29 @@ class JobManager:
                 job.warnings = list(node.warnings) if node else []
             self._remember(job)
         return job
+
+    def _owned_job(self, job_id: str, owner: str, hint: str = "check the job id") -> Job:
+        job = self._job(job_id)
+        if job is None or not owns(owner, job.row.source_key):
+            raise ServiceError("unknown_job", f"no job {job_id!r} on this solver: {hint}")
+        return job
+
+    def _check_same_request(self, job: Job, body: dict, source: str) -> None:
+        """A known job id may only be resent unchanged (a retry or a resume), never reused for another edit."""
+        row = job.row
+        stored = {k: v for k, v in row.params.items() if k not in SERVER_PARAM_KEYS}
+        differs = [what for what, same in (
+            ("task", body["task"] == row.task),
+            ("parameters", json.dumps(body["params"], sort_keys=True) == json.dumps(stored, sort_keys=True)),
+            ("object", source == row.source_key),
+            ("parent node", body["parent_node"] == row.base_node),
+            ("mesh", body["mesh_hash"] is None or row.mesh_hash is None or body["mesh_hash"] == row.mesh_hash),
+        ) if not same]
+        if differs:
+            then = "was interrupted" if job.state == "interrupted" else f"is {job.state}"
+            raise ServiceError("invalid_input", f"job {row.job_id} {then}, and this submit differs in its "
+                                                f"{' and '.join(differs)}: a new edit needs a fresh job id; to "
+                                                "run this job again, resubmit it unchanged")
 
     def _remember(self, job: Job) -> None:
         self.live[job.row.job_id] = job
@@ -309,7 +404,18 @@ class JobManager:
             raise ServiceError("bad_message", "mesh_hash does not match the uploaded arrays: resend the mesh")
         return v, f, actual
 
-    def _echo_probe(self, msg: wire.Message, base_row) -> dict:
+    def _mesh_facts(self, blob: str) -> tuple[int, int, tuple, float]:
+        """(vertices, faces, center, scale) of a stored mesh blob, remembered for the next submit."""
+        facts = self._facts.get(blob)
+        if facts is None:
+            v, f, _ = unpack_mesh(self.blobs.read(blob, verify=False))
+            facts = (len(v), len(f), *normalization_of(v, f))
+            self._facts[blob] = facts
+            while len(self._facts) > 64:
+                self._facts.popitem(last=False)
+        return facts
+
+    def _echo_probe(self, msg: wire.Message, base_row, source: str, owner: str) -> dict:
         """The no-op task, answered at once: validate the mesh and keep it (in memory) as the result."""
         body = msg.body
         digests = None
@@ -318,7 +424,7 @@ class JobManager:
             digests = {k: msg.digests[k] for k in ("vertices", "faces")}
         elif body["mesh_hash"] is not None:
             mesh_hash = body["mesh_hash"]
-            blob = self.store.mesh_blob(mesh_hash)
+            blob = self.store.mesh_blob(mesh_hash, owner and owner + SCOPE_SEP)
             if blob is None:
                 raise ServiceError("need_mesh", "the solver does not have this mesh yet: send it with the request")
             v, f, _ = unpack_mesh(self.blobs.read(blob))
@@ -329,7 +435,7 @@ class JobManager:
             raise ServiceError("invalid_input", "submit needs a mesh or a parent_node to start from")
         v, f = wire.canonical_mesh(v, f)
         now = time.time()
-        row = JobRow(body["job_id"], body["source_key"], "echo", body["params"], mesh_hash, body["parent_node"], "",
+        row = JobRow(body["job_id"], source, "echo", body["params"], mesh_hash, body["parent_node"], "",
                      "done", None, None, now, 1)
         job = Job(row, "done", stage="done", fraction=1.0)
         self._remember(job)
@@ -338,19 +444,10 @@ class JobManager:
             self.probes.popitem(last=False)
         return job.as_reply()
 
-    def _store_mesh(self, msg: wire.Message) -> str:
-        v, f, actual = self._checked_mesh(msg)
-        if self.store.mesh_blob(actual) is None:
+    def _store_mesh(self, v, f, mesh_hash: str) -> None:
+        if self.store.mesh_blob(mesh_hash) is None:
             blob = self.blobs.put_bytes(pack_mesh(v, f))  # durable before the row that names it
-            self.store.add_mesh(actual, blob, len(v), len(f))
-        return actual
-
-    def _mesh_size(self, mesh_hash: str | None, base_row) -> tuple[int, int]:
-        if mesh_hash is not None:
-            row = self.store.db.execute("SELECT n_vertices, n_faces FROM meshes WHERE mesh_hash=?", (mesh_hash,)).fetchone()
-            return int(row[0]), int(row[1])
-        v, f, _ = unpack_mesh(self.blobs.read(base_row.result_blob, verify=False))
-        return len(v), len(f)
+            self.store.add_mesh(mesh_hash, blob, len(v), len(f))
 
     def _input_blob(self, row: JobRow) -> str:
         if row.mesh_hash is not None:
@@ -362,10 +459,14 @@ class JobManager:
         node_id = self.store.finish_job(job.row.job_id, dict(record, node_id=wire.new_id(), input_hash=input_hash))
         job.state, job.node_id, job.stage, job.fraction, job.error = "done", node_id, "done", 1.0, None
         job.warnings = list(record.get("warnings", []))
+        self.data.fit()  # the new node may push the folder past its cap: cached fields go first
 
     def _set_final(self, job: Job, state: str, error: str | None) -> None:
         self.store.set_job_state(job.row.job_id, state, error)
         job.state, job.error = state, error
+        if state in ("failed", "cancelled"):
+            self.data.forget_upload(job.row.mesh_hash)
+            self._collect_due = True  # a stopped worker may have left blobs nothing names
 
     def _start_queued(self) -> None:
         while self.queue and self.running() < self.limits.max_workers:
@@ -380,17 +481,25 @@ class JobManager:
         row = job.row
         start_field = None
         if row.base_node:
-            base = self.store.node(row.base_node)
-            start_field = base.result_field_blob or base.field_blob
+            # The field of the node's result, when the task kept one; else None: the worker refits from
+            # the node's result mesh (the input's field would describe the shape before that edit).
+            start_field = self.store.node(row.base_node).result_field_blob
+        tmp = self.blobs.root / "tmp"
+        tmp.mkdir(exist_ok=True, mode=0o700)
+        job.log_path = tmp / f"job-{os.urandom(6).hex()}.log"
         spec = {"job_id": row.job_id, "task": row.task, "params": row.params, "input_blob": self._input_blob(row),
                 "start_field_blob": start_field, "blob_root": str(self.blobs.root), "cache_root": str(self.cache_root),
                 "cache_max_bytes": self.limits.cache_max_bytes, "memory_bytes": self.limits.memory_bytes,
-                "cpu_seconds": self.limits.time_s * 4, "threads": self.limits.threads, "parent_pid": os.getpid()}
+                "cpu_seconds": self.limits.time_s * 4, "threads": self.limits.threads, "parent_pid": os.getpid(),
+                "log_path": str(job.log_path)}
         parent, child = self._ctx.Pipe()
-        proc = self._ctx.Process(target=worker.main, args=(child, spec), daemon=True, name=f"isoclay-job-{row.job_id}")
-        proc.start()
+        with processes.spawn_guard():
+            proc = self._ctx.Process(target=worker.main, args=(child, spec), daemon=True,
+                                     name=f"isoclay-job-{row.job_id}")
+            proc.start()
         child.close()
         job.process, job.conn, job.started, job.final, job.cancel_at = proc, parent, time.monotonic(), None, None
+        job.evidence, job.oom_before, job.sampled = crashes.Evidence(), crashes.oom_kill_count(), 0.0
         job.state, job.stage, job.fraction = "running", "starting", 0.0
         self.store.set_job_state(row.job_id, "running", count_attempt=True)
 
@@ -399,7 +508,9 @@ class JobManager:
         try:
             while conn.poll(0):
                 msg = conn.recv()
-                if msg[0] == "progress":
+                if msg[0] == "started":
+                    job.evidence.started = True
+                elif msg[0] == "progress":
                     job.stage, job.fraction, job.info = msg[1], min(1.0, max(0.0, msg[2])), msg[3]
                 elif job.final is None:
                     job.final = msg
@@ -417,26 +528,16 @@ class JobManager:
             self._set_final(job, "failed", final[2])
         else:
             self.crashes += 1
-            self._set_final(job, "failed", crash_reason(job.process.exitcode, self.limits))
+            after = crashes.oom_kill_count()
+            ev = job.evidence
+            ev.oom_kills = after - job.oom_before if after is not None and job.oom_before is not None else None
+            ev.last_words = crashes.last_words(job.log_path) if job.log_path else ""
+            self._set_final(job, "failed", crashes.crash_reason(job.process.exitcode, self.limits.memory_bytes, ev))
+        if job.log_path is not None:
+            job.log_path.unlink(missing_ok=True)
         job.process = None
 
 
 def correspondence_of(mesh_blob) -> dict:
     """source_face / source_bary stored with a result mesh (see worker.correspondence_arrays), or {}."""
     return {k: a for k, a in unpack_arrays(mesh_blob, MESH_MAGIC).items() if k in ("source_face", "source_bary")}
-
-
-def crash_reason(exitcode, limits: JobLimits) -> str:
-    """One line explaining how a worker died without reporting."""
-    if exitcode is not None and exitcode < 0:
-        try:
-            name = signal.Signals(-exitcode).name
-        except ValueError:
-            name = f"signal {-exitcode}"
-        if name == "SIGXCPU":
-            return "the worker hit the solver's CPU-time limit: lower the resolution or raise --time-limit"
-        if name == "SIGKILL":
-            return ("the worker was killed (SIGKILL), most likely out of memory: decimate the mesh or lower "
-                    "params.fit.resolution")
-        return f"the worker crashed ({name}): the server keeps serving; retry, and report it if it repeats"
-    return f"the worker exited unexpectedly (exit code {exitcode}): retry, and report it if it repeats"

@@ -4,28 +4,46 @@ Every message is checked (signature, replay, schema, array sizes) before anythin
 message gets a one-line error and the loop carries on. Pings are answered by this loop itself,
 so a wedged loop looks dead to clients (transport heartbeats alone would hide it). Torch is
 never imported here: jobs run in worker processes (service/jobs.py).
+
+Admission happens before any message is read: with CURVE, the ZAP handler admits allow-listed
+client keys; without, clients log in with PLAIN and a password derived from the connection
+file's key (auth.Authenticator). A peer that has not read the connection file cannot make the
+server hold a single frame. History is scoped per CURVE client key unless shared_history.
 """
 
 from __future__ import annotations
 
-import json
 import os
-import signal
-import threading
-import time
-from dataclasses import dataclass, field
-from pathlib import Path
+import sys
 
-import msgpack
-import zmq
+if __name__ == "__main__" and not sys.flags.safe_path and os.name == "posix" and sys.version_info >= (3, 11) \
+        and not os.environ.get("ISOCLAY_SAFE_PATH_REEXEC"):
+    # `python -m` put the working folder first on sys.path: start again with -P before importing
+    # anything that a file planted there could shadow (same pid; see service/processes.py)
+    # (an empty or relative PYTHONPATH entry names the working folder too: those are dropped)
+    _root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    _path = [_root] + [p for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if os.path.isabs(p)]
+    _env = dict(os.environ, PYTHONSAFEPATH="1", ISOCLAY_SAFE_PATH_REEXEC="1", PYTHONPATH=os.pathsep.join(_path))
+    os.execve(sys.executable, [sys.executable, "-P", "-m", "isoclay.service.server", *sys.argv[1:]], _env)
 
-from .. import __version__, wire
-from ..errors import InvalidInput, IsoclayError
-from ..history.blobs import BlobStore
-from ..history.store import HistoryStore
-from ..summaries import describe_edit
-from . import auth
-from .jobs import JobLimits, JobManager, ServiceError
+import hmac  # noqa: E402 (after the re-execution above, on purpose)
+import json  # noqa: E402
+import signal  # noqa: E402
+import threading  # noqa: E402
+import time  # noqa: E402
+from dataclasses import dataclass, field  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import msgpack  # noqa: E402
+import zmq  # noqa: E402
+
+from .. import __version__, wire  # noqa: E402
+from ..errors import InvalidInput, IsoclayError  # noqa: E402
+from ..history.blobs import BlobStore  # noqa: E402
+from ..history.store import HistoryStore  # noqa: E402
+from ..summaries import describe_edit  # noqa: E402
+from . import auth, processes  # noqa: E402
+from .jobs import JobLimits, JobManager, ServiceError, owns, scoped  # noqa: E402
 
 #: Frames read from one message at most (signature + header + arrays); the rest is drained unread.
 MAX_FRAMES = wire.MAX_ARRAYS + 2
@@ -47,6 +65,8 @@ class ServerConfig:
     endpoint : None = 127.0.0.1 on a free port (or the port of an existing connection file)
     curve_secret : key file of the server (create_keypair); with allow_keys enables CURVE + ZAP
     allow_keys : directory of allowed client public keys (*.key)
+    shared_history : with CURVE, every allowed key sees every object's history (default: each
+        client key sees only the history it made)
     """
 
     data_dir: Path = field(default_factory=default_data_dir)
@@ -54,6 +74,7 @@ class ServerConfig:
     connection_file: Path | None = None
     curve_secret: Path | None = None
     allow_keys: Path | None = None
+    shared_history: bool = False
     limits: JobLimits = field(default_factory=JobLimits)
 
 
@@ -66,9 +87,10 @@ class Server:
         self.blobs.clean_temporaries()
         self.store = HistoryStore(self.data_dir / "history.sqlite3")
         self.interrupted = self.store.recover()
-        self.jobs = JobManager(self.store, self.blobs, self.data_dir / "cache", config.limits)
+        self.jobs = JobManager(self.store, self.blobs, self.data_dir / "cache", config.limits, self.data_dir)
         self.guard = auth.ReplayGuard()
-        self.stats = {"received": 0, "answered": 0, "rejected": 0, "internal_errors": 0, "oversized": 0}
+        self.stats = {"received": 0, "answered": 0, "rejected": 0, "internal_errors": 0, "oversized": 0,
+                      "dropped_unsigned": 0}
         self.rejections: dict[str, int] = {}
         self._stop = threading.Event()
         self._reply_seq = 0
@@ -102,21 +124,27 @@ class Server:
         key_hex = previous.get("key") if wire.is_hex64(previous.get("key")) else wire.new_key()
         endpoint = cfg.endpoint or previous.get("endpoint") or "tcp://127.0.0.1:*"
         auth.check_endpoint(endpoint, curve is not None)
+        key = wire.key_bytes(key_hex)
         sock = self._ctx.socket(zmq.ROUTER)
         sock.setsockopt(zmq.LINGER, 0)
         sock.setsockopt(zmq.ROUTER_MANDATORY, 1)  # a reply to a departed client raises instead of vanishing
-        sock.setsockopt(zmq.MAXMSGSIZE, wire.MAX_MESSAGE_BYTES)
+        sock.setsockopt(zmq.MAXMSGSIZE, wire.MAX_FRAME_BYTES)  # per frame: the transport drops a peer past it
         sock.setsockopt(zmq.HEARTBEAT_IVL, 1000)
         sock.setsockopt(zmq.HEARTBEAT_TIMEOUT, 5000)
         sock.setsockopt(zmq.HEARTBEAT_TTL, 5000)
         sock.setsockopt(zmq.SNDHWM, 1000)
+        if auth.is_ipv6(endpoint):
+            sock.setsockopt(zmq.IPV6, 1)
         if curve is not None:
-            self._auth = auth.Authenticator(self._ctx, curve[2])
+            self._auth = auth.Authenticator(self._ctx, public_keys=curve[2])
             sock.curve_server = True
             sock.curve_publickey = curve[0].encode()
             sock.curve_secretkey = curve[1].encode()
-            sock.zap_domain = auth.Authenticator.DOMAIN.encode()
             self.curve_public = curve[0]
+        else:
+            self._auth = auth.Authenticator(self._ctx, password=wire.admission_password(key))
+            sock.plain_server = True
+        sock.zap_domain = auth.Authenticator.DOMAIN.encode()
         try:
             sock.bind(endpoint)
         except zmq.ZMQError as exc:
@@ -124,10 +152,12 @@ class Server:
                 sock.bind("tcp://127.0.0.1:*")  # the old port is taken: a new one, clients re-read the file
             else:
                 sock.close()
-                raise InvalidInput(f"cannot listen on {endpoint} ({exc}): pick another port") from None
+                self._auth.stop()
+                self._ctx.term()
+                raise InvalidInput(_bind_refusal(endpoint, exc)) from None
         self.sock = sock
         self.endpoint = sock.getsockopt_string(zmq.LAST_ENDPOINT)
-        self.key = wire.key_bytes(key_hex)
+        self.key = key
         info = {"endpoint": self.endpoint, "key": key_hex, "signature_scheme": "hmac-sha256",
                 "protocol": wire.PROTOCOL, "boot_id": self.boot_id, "pid": os.getpid(), "version": __version__}
         if self.curve_public:
@@ -149,11 +179,12 @@ class Server:
                 if poller.poll(20):
                     for _ in range(64):
                         try:
-                            frames = self._receive()
+                            received = self._receive()
                         except zmq.Again:
                             break
-                        if frames is not None:
-                            self._handle(*frames)
+                        if received is not None:
+                            self._handle(*received)
+                        received = None  # keep no reference: a large message is freed now, not next turn
                 self.jobs.pump()
         finally:
             self.close()
@@ -168,16 +199,28 @@ class Server:
         self.store.close()
 
     def _receive(self):
-        """(identity, frames) of one message, or None if it had too many frames (drained unread)."""
+        """(identity, frames) of one message, or None if it was refused while reading.
+
+        Frames past MAX_FRAMES, and every frame after a header whose signature fails, are read
+        and dropped at once (ZeroMQ hands a message over only whole), so none is kept.
+        """
         identity = self.sock.recv(flags=zmq.NOBLOCK, copy=False)
-        frames, more = [], identity.more
+        frames, more, count, forged = [], identity.more, 0, False
         while more:
             frame = self.sock.recv(copy=False)
             more = frame.more
-            if len(frames) <= MAX_FRAMES:
-                frames.append(frame)
+            count += 1
+            if forged or count > MAX_FRAMES:
+                continue
+            frames.append(frame)
+            if count == 2 and more and not _signed(self.key, frames):
+                forged, frames = True, []
         self.stats["received"] += 1
-        if len(frames) > MAX_FRAMES:
+        if forged:
+            self.stats["dropped_unsigned"] += 1
+            self._reject(identity, None, wire.WireError("signature check failed", "bad_signature"))
+            return None
+        if count > MAX_FRAMES:
             self.stats["oversized"] += 1
             self._reject(identity, None, wire.WireError(f"message has more than {MAX_FRAMES} frames", "bad_message"))
             return None
@@ -208,7 +251,7 @@ class Server:
             return
         digests = None
         try:
-            reply = self._dispatch(msg)
+            reply = self._dispatch(msg, self._owner(frames[0]))
             kind, body, arrays = reply[:3]
             digests = reply[3] if len(reply) > 3 else None
         except ServiceError as exc:
@@ -224,7 +267,13 @@ class Server:
         self._send(identity, reply)
         self.stats["answered"] += 1
 
-    def _dispatch(self, msg: wire.Message):
+    def _owner(self, frame) -> str:
+        """Whose history a message may touch: its CURVE client key, or "" (shared) without CURVE."""
+        if self.curve_public is None or self.config.shared_history:
+            return ""
+        return frame.get("User-Id") or "?"  # ZAP sets it for every admitted CURVE peer
+
+    def _dispatch(self, msg: wire.Message, owner: str = ""):
         b = msg.body
         t = msg.type
         if t == "ping":
@@ -232,23 +281,27 @@ class Server:
                             "server_time": time.time(), "queued": len(self.jobs.queue),
                             "running": self.jobs.running()}, None
         if t == "submit":
-            return "job", self.jobs.submit(msg), None
+            return "job", self.jobs.submit(msg, owner), None
         if t == "poll":
-            return "job", self.jobs.poll(b["job_id"]), None
+            return "job", self.jobs.poll(b["job_id"], owner), None
         if t == "cancel":
-            return "job", self.jobs.cancel(b["job_id"]), None
+            return "job", self.jobs.cancel(b["job_id"], owner), None
         if t == "resume":
-            return "job", self.jobs.resume(b["job_id"]), None
+            return "job", self.jobs.resume(b["job_id"], owner), None
         if t == "result":
-            return ("mesh", *self.jobs.result(b["job_id"]))
+            return ("mesh", *self.jobs.result(b["job_id"], owner))
         if t == "fetch_node":
-            return ("mesh", *self.jobs.node_mesh(b["node_id"]))
-        source = b.get("source_key", "")
+            return ("mesh", *self.jobs.node_mesh(b["node_id"], owner))
+        source = scoped(owner, b.get("source_key", ""))
         if t == "undo":
             self.store.undo(source)
         elif t == "redo":
             self.store.redo(source)
         elif t == "checkout":
+            node = self.store.node(b["node_id"]) if b["node_id"] else None
+            if b["node_id"] and (node is None or not owns(owner, node.source_key) or node.source_key != source):
+                raise ServiceError("invalid_input", f"node {b['node_id']} is not in the history of "
+                                                    f"{b['source_key']!r}: list it with history first")
             self.store.checkout(source, b["node_id"])
         current = self.store.current(source)
         rows = self.store.nodes(source)
@@ -258,7 +311,7 @@ class Server:
             rows = sorted(keep, key=lambda n: n.finished)
         # "summary" says what each edit was (summaries.describe_edit), so no client needs the bulky parameters
         nodes = [_compact(dict(n.summary(current), summary=describe_edit(n.task, n.params))) for n in rows]
-        return "history", {"source_key": source, "current": current, "nodes": nodes}, None
+        return "history", {"source_key": b["source_key"], "current": current, "nodes": nodes}, None
 
     # ---------------------------------------------------------------- replies
 
@@ -298,16 +351,29 @@ def _compact(summary: dict) -> dict:
     return summary
 
 
+def _signed(key: bytes, frames) -> bool:
+    """True if frames[1] (the header) carries a valid signature in frames[0]."""
+    signature, header = memoryview(frames[0]), memoryview(frames[1])
+    return (signature.nbytes == wire.SIGNATURE_BYTES and header.nbytes <= wire.MAX_HEADER_BYTES
+            and hmac.compare_digest(bytes(signature), wire.sign(key, header)))
+
+
+def _bind_refusal(endpoint: str, exc: zmq.ZMQError) -> str:
+    if auth.is_ipv6(endpoint):
+        return (f"cannot listen on {endpoint}: this machine offers no IPv6 at that address ({exc}): "
+                "use tcp://127.0.0.1:PORT")
+    if exc.errno == zmq.EADDRINUSE:
+        return f"cannot listen on {endpoint}: the port is in use: pick another port, or :* for a free one"
+    return f"cannot listen on {endpoint} ({exc}): give an address of this machine, e.g. tcp://127.0.0.1:PORT"
+
+
 def _peek_session(frames, key: bytes) -> tuple[str, int]:
     """Session and seq of a signed but otherwise bad message, for addressing the error reply.
 
     Only a header whose signature verifies is parsed here; anything else gets an anonymous reply.
     """
-    import hmac
-
     try:
-        if (frames is None or len(frames) < 2 or memoryview(frames[1]).nbytes > wire.MAX_HEADER_BYTES
-                or not hmac.compare_digest(bytes(frames[0]), wire.sign(key, frames[1]))):
+        if frames is None or len(frames) < 2 or not _signed(key, frames):
             return "", 0
         header = msgpack.unpackb(bytes(frames[1]), raw=False, max_bin_len=0, max_ext_len=0)
         session, seq = header.get("session", ""), header.get("seq", 0)
@@ -323,10 +389,16 @@ def _one_line(exc) -> str:
 
 
 def run_server(config: ServerConfig, on_ready=None, watch_stdin: bool = False) -> int:
-    """Serve until SIGTERM/SIGINT (main thread), standard input closes (watch_stdin) or stop()."""
-    import sys
+    """Serve until SIGTERM/SIGINT (main thread), standard input closes (watch_stdin) or stop().
 
+    The process's files are private (umask 0o077: history, its -wal/-shm, blobs, cache, logs),
+    the working folder leaves sys.path (children inherit PYTHONSAFEPATH=1), and the parameter
+    checker loads as soon as the solver is idle (jobs.CHECKER_PRELOAD_AFTER_S).
+    """
+    os.umask(0o077)
+    processes.drop_working_folder()
     server = Server(config)
+    server.jobs.preload_checker = True
     if threading.current_thread() is threading.main_thread():
         for sig in (signal.SIGTERM, signal.SIGINT):
             signal.signal(sig, lambda *_: server.stop())
@@ -348,20 +420,9 @@ def run_server(config: ServerConfig, on_ready=None, watch_stdin: bool = False) -
 
 def main(argv=None) -> int:
     """`python -m isoclay.service.server ...`: the same options as `isoclay serve`, without the CLI's imports."""
-    import argparse
-    import sys
+    from . import launch
 
-    from ..commands import serve
-
-    parser = argparse.ArgumentParser(prog="isoclay-serve", description=serve.DESCRIPTION,
-                                     formatter_class=argparse.RawDescriptionHelpFormatter)
-    serve.add_arguments(parser)
-    args = parser.parse_args(argv)
-    try:
-        return serve.run(args, None)
-    except IsoclayError as exc:
-        sys.stderr.write(f"isoclay: {exc}\n")
-        return exc.exit_code
+    return launch.main(argv)
 
 
 if __name__ == "__main__":

@@ -1,15 +1,18 @@
 """The job worker: one spawned process per job, with memory and CPU limits, talking to the server over a pipe.
 
-Messages to the server: ("progress", stage, fraction, info) at most 10 per second,
-("done", record), ("cancelled", message), ("failed", code, message). The server sends
+Messages to the server: ("started", pid) first, ("progress", stage, fraction, info) at most
+10 per second, then exactly one of ("done", record), ("cancelled", message), ("failed", code,
+message). The server sends
 ("cancel",) to ask for a cooperative stop; it terminates the process if that takes too long.
 Torch is imported here (for fitting tasks), never in the server process.
 """
 
 from __future__ import annotations
 
+import faulthandler
 import math
 import os
+import sys
 import time
 
 PROGRESS_INTERVAL_S = 0.1
@@ -91,32 +94,64 @@ def _plain_info(info) -> dict:
     return out
 
 
-def main(conn, spec: dict) -> None:
-    """Process entry point: run one job and report exactly one final message."""
+def prepare_process(memory_bytes: int | None, cpu_seconds: float | None, log_path: str | None = None) -> None:
+    """What every process the server spawns does first: private files (umask 0o077), standard error
+    into its own log (fatal signals print the Python stack there), die with the server, limits."""
+    os.umask(0o077)
+    if log_path:
+        fd = os.open(log_path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o600)
+        os.dup2(fd, 2)
+        os.close(fd)
+        sys.stderr = open(2, "w", encoding="utf-8", errors="replace", buffering=1, closefd=False)
+    faulthandler.enable()
     die_with_parent()
-    set_limits(spec.get("memory_bytes"), spec.get("cpu_seconds"))
-    channel = _Channel(conn, spec["parent_pid"])
+    set_limits(memory_bytes, cpu_seconds)
+
+
+def main(conn, spec: dict) -> None:
+    """Process entry point: run one job and report exactly one final message.
+
+    Any failure, set-up included, is reported with its text; a worker that dies without a word
+    (a signal, os._exit) leaves its last lines in spec["log_path"], which the server quotes.
+    """
+    try:
+        conn.send(("started", os.getpid()))
+        prepare_process(spec.get("memory_bytes"), spec.get("cpu_seconds"), spec.get("log_path"))
+        channel = _Channel(conn, spec["parent_pid"])
+        conn.send(report_of(run_job, spec, channel))
+    except BaseException as exc:  # set-up failed (a report could not even be built): still say why
+        try:
+            conn.send(("failed", "job_failed", f"the worker could not start the job ({type(exc).__name__}: "
+                                               f"{_one_line(exc)})"))
+        except (OSError, ValueError):
+            pass
+    finally:
+        conn.close()
+
+
+def report_of(run, spec: dict, channel) -> tuple:
+    """The one final message for a job: ("done", record), ("cancelled", text) or ("failed", code, text)."""
     from ..errors import Cancelled, InvalidInput, InvalidMesh, IsoclayError
 
     try:
-        record = run_job(spec, channel)
-        conn.send(("done", record))
+        return ("done", run(spec, channel))
     except Cancelled as exc:
-        conn.send(("cancelled", str(exc)))
+        return ("cancelled", str(exc))
     except InvalidMesh as exc:
-        conn.send(("failed", "invalid_mesh", str(exc)))
+        return ("failed", "invalid_mesh", str(exc))
     except InvalidInput as exc:
-        conn.send(("failed", "invalid_input", str(exc)))
+        return ("failed", "invalid_input", str(exc))
     except IsoclayError as exc:
-        conn.send(("failed", "job_failed", str(exc)))
+        return ("failed", "job_failed", str(exc))
     except MemoryError:
-        conn.send(("failed", "job_failed", "ran out of memory within the solver's limit: decimate the mesh, lower the "
-                                           "resolution, or raise --memory-limit"))
+        return ("failed", "job_failed", "ran out of memory within the solver's limit: decimate the mesh, lower the "
+                                        "resolution, or raise --memory-limit")
     except Exception as exc:  # one line for the user; the server keeps serving
-        text = " ".join(str(exc).split())[:200]
-        conn.send(("failed", "job_failed", f"internal error in the worker ({type(exc).__name__}: {text})"))
-    finally:
-        conn.close()
+        return ("failed", "job_failed", f"internal error in the worker ({type(exc).__name__}: {_one_line(exc)})")
+
+
+def _one_line(exc) -> str:
+    return " ".join(str(exc).split())[:200]
 
 
 def run_job(spec: dict, channel: _Channel) -> dict:
@@ -134,26 +169,17 @@ def run_job(spec: dict, channel: _Channel) -> dict:
 
     import numpy as np
 
-    from ..errors import InvalidInput
     from ..field.cache import FieldCache
     from ..mesh.types import TriangleMesh
     from ..runtime import configure_torch
 
     configure_torch(spec.get("threads"))
     from ..field.checkpoint import load_field, save_field
-    from ..field.fit import FitConfig
     from ..pipeline import fit_key, prepare_mesh, run_edit
     from ..summaries import describe_edit
+    from .param_check import fit_config_of
 
-    params = dict(params)
-    fit_settings = params.pop("fit", None) or {}
-    if not isinstance(fit_settings, dict):
-        raise InvalidInput("params.fit must be a map of fit settings (resolution, steps, ...)")
-    try:
-        fit_config = FitConfig(**{"seed": int(spec.get("seed", 0)), **fit_settings})
-        fit_config = fit_config.validated() if hasattr(fit_config, "validated") else fit_config
-    except TypeError as exc:
-        raise InvalidInput(f"unknown fit setting in params.fit ({exc}): see FitConfig's fields") from None
+    fit_config, params = fit_config_of(params, int(spec.get("seed", 0)))
     mesh = TriangleMesh(np.array(v), np.array(f))
     prepared = prepare_mesh(mesh)
     key = fit_key(prepared.mesh_hash, fit_config)
@@ -249,7 +275,8 @@ def _test_echo(spec, channel, blobs, v, f) -> dict:
 
     delay_s : seconds of cooperative work in steps (progress + stop checks)
     ignore_cancel : keep working after a cancel (exercises terminate escalation)
-    crash : "exit" (exit code 3), "abort" (SIGABRT), "raise" (exception), "memory" (allocate past the limit)
+    crash : "exit" (a line on stderr, exit code 3), "abort" (SIGABRT), "raise" (exception), "memory" (allocate
+        past the limit)
     """
     import numpy as np
 
@@ -268,6 +295,8 @@ def _test_echo(spec, channel, blobs, v, f) -> dict:
             raise Cancelled("cancelled during echo; nothing was written")
         if crash and i == steps // 2:
             if crash == "exit":
+                sys.stderr.write("deliberate exit for a test\n")
+                sys.stderr.flush()
                 os._exit(3)
             if crash == "abort":
                 os.abort()

@@ -5,17 +5,23 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 
+from ..bounds import shown
 from ..errors import InvalidInput
 from ..extract import bounds_of, decimate, extract_mesh
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
 from .base import TaskResult, check_param_names, check_stop
 
+#: A closed surface needs at least a tetrahedron's 4 faces.
+MIN_TARGET_FACES = 4
+#: The wire carries at most 20,000,000 rows per array (wire.MAX_DIM): a result cannot have more faces.
+MAX_TARGET_FACES = 20_000_000
+
 
 @dataclass(frozen=True)
 class Config:
-    """resolution : marching-cubes cells along the object's longest side;
-    target_faces : decimate to at most this many faces (0 = keep all)."""
+    """resolution : marching-cubes cells along the object's longest side, 16..1024;
+    target_faces : decimate to at most this many faces (0 = keep all), else 4..20,000,000."""
 
     resolution: int = 256
     target_faces: int = 0
@@ -25,10 +31,13 @@ class Config:
         check_param_names("remesh", params, ("resolution", "target_faces"), '{"resolution": 256}')
         resolution = params.get("resolution", cls.resolution)
         target = params.get("target_faces", cls.target_faces)
-        if not isinstance(resolution, int) or not 16 <= resolution <= 1024:
-            raise InvalidInput(f"remesh: resolution {resolution!r} out of range: use an integer from 16 to 1024")
-        if not isinstance(target, int) or target < 0:
-            raise InvalidInput(f"remesh: target_faces {target!r} must be a whole number >= 0")
+        if isinstance(resolution, bool) or not isinstance(resolution, int) or not 16 <= resolution <= 1024:
+            raise InvalidInput(f"remesh: resolution {shown(resolution)} out of range: use an integer from 16 to 1024")
+        if isinstance(target, bool) or not isinstance(target, int) or target < 0:
+            raise InvalidInput(f"remesh: target_faces {shown(target)} must be a whole number >= 0 (0 keeps every face)")
+        if target and not MIN_TARGET_FACES <= target <= MAX_TARGET_FACES:
+            raise InvalidInput(f"remesh: target_faces {shown(target)} is out of range: use 0 (keep every face) or "
+                               f"{shown(MIN_TARGET_FACES)} to {shown(MAX_TARGET_FACES)}")
         return cls(resolution, target)
 
 
