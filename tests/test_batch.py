@@ -278,7 +278,7 @@ def test_dry_run_refuses_an_item_too_large_for_the_workers(library, tmp_path):
     ("[inputs]\npaths = ['*.ply']\n[output]\nname = '{stem}.fbx'\n[[steps]]\ntask = 'remesh'\n", "must end in one of"),
     ("[inputs]\npaths = ['*.ply']\n[output]\nname = '{base}.ply'\n[[steps]]\ntask = 'remesh'\n", "unknown field {base}"),
     ("[inputs]\npaths = ['*.ply']\n", "no [[steps]]"),
-    ("[inputs]\npaths = ['*.ply']\n[fit]\nresolution = 4\n[[steps]]\ntask = 'remesh'\n", "field resolution 4 out of range"),
+    ("[inputs]\npaths = ['*.ply']\n[fit]\nresolution = 4\n[[steps]]\ntask = 'remesh'\n", "fit resolution 4 is out of range"),
     ("[inputs]\npaths = ['*.ply']\n[cluster]\nmemory_limit = 'lots'\n[[steps]]\ntask = 'remesh'\n", "give a size"),
     ("[inputs]\npaths = ['*.ply']\n[[steps]]\ntask = 'remesh'\n[[overrides]]\nmatch = 'a*'\nsmooth = {strength = 1}\n",
      "has no smooth step"),

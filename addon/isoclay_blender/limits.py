@@ -4,7 +4,7 @@ tests/test_addon_limits.py checks each against the solver's own check (the solve
 ends of each range and refuses just beyond them).
 """
 
-FIELD_DETAIL_RANGE = (16, 512)      # field.fit.FitConfig.validated: resolution
+FIELD_DETAIL_RANGE = (16, 1024)     # field.fit.FitConfig.validated: resolution
 SURFACE_DETAIL_RANGE = (16, 1024)   # tasks remesh / smooth / sharpen / deform: resolution
 SHARPEN_AMOUNT_RANGE = (0.01, 1.0)  # tasks.sharpen: amount above 0, at most 1
 MAX_STRENGTH_REL = 0.25             # tasks.smooth.MAX_STRENGTH_REL: strength <= this x the longest side
