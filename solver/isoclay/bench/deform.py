@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..energies.mesh_distortion import flipped_faces
+from ..energies.mesh_distortion import distortion, flipped_faces
 from ..field.fit import FitConfig, fit_field
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
@@ -42,7 +42,9 @@ def _score(case: dc.Case, reference: np.ndarray, params: dict) -> dict:
     volume = measures.signed_volume(u, case.faces) / v0 - 1
     flips = int(flipped_faces(case.vertices, u, case.faces).sum())
     m = out.metrics
+    kink = float(np.degrees(distortion(case.vertices, u, case.faces).bend_max_rad))
     row = {
+        "largest_dihedral_change_deg": kink,
         "stiffness": params.get("stiffness"), "mean_distance_rel": float(d.mean()), "max_distance_rel": float(d.max()),
         "volume_change_rel": float(volume), "handle_error_max_rel": float(m["handle_error_max_rel"]),
         "flipped_faces": flips, "iterations": int(m["iterations"]), "converged": bool(m["converged"]),
@@ -85,11 +87,29 @@ def _case_row(case: dc.Case, params: dict) -> dict:
     row = {"what": case.what, "vertices": len(case.vertices),
            "reference": {"seconds": ref.seconds["total"], "iterations": ref.iterations, "converged": ref.converged,
                          "tets": ref.tets, "volume_change_rel": float(measures.signed_volume(ref.vertices, case.faces) / v0 - 1)}}
+    row["reference"]["largest_dihedral_change_deg"] = float(np.degrees(distortion(case.vertices, ref.vertices, case.faces).bend_max_rad))
+    row["surface_arap_100"] = _surface_arap(case, ids, targets)
     for stiffness in ("stiff", "medium"):
         ours = _score(case, ref.vertices, {**params, "stiffness": stiffness})
         ours["seconds_ratio_to_reference"] = ours["seconds"] / max(ref.seconds["total"], 1e-9)
         row[f"ours_{stiffness}"] = ours
     return row
+
+
+def _surface_arap(case: dc.Case, ids: np.ndarray, targets: np.ndarray) -> dict:
+    """libigl's surface ARAP (Sorkine & Alexa 2007), 100 iterations, same held vertices: the mesh method an
+    artist would otherwise reach for; it knows no inside."""
+    import igl
+
+    data = igl.ARAPData()
+    data.max_iter = 100
+    t0 = time.perf_counter()
+    igl.arap_precomputation(case.vertices, case.faces, 3, ids.astype(np.int64), data)
+    u = igl.arap_solve(targets, data, case.vertices.copy())
+    d = distortion(case.vertices, u, case.faces)
+    v0 = measures.signed_volume(case.vertices, case.faces)
+    return {"seconds": time.perf_counter() - t0, "largest_dihedral_change_deg": float(np.degrees(d.bend_max_rad)),
+            "volume_change_rel": float(measures.signed_volume(u, case.faces) / v0 - 1), "flipped_faces": d.flipped}
 
 
 def _speed_bar(case: dc.Case) -> dict:
