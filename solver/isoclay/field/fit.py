@@ -30,6 +30,7 @@ from ..callbacks import check_stop, never_stop, no_progress
 from .base import SDFField
 from .mlp import MLPSDF
 from .node_values import buried_vertices, coarse_node_values, fine_node_values, refined_blocks
+from .distances import BLOCK
 from .sparse import SparseSplineSDF, smoothed_coefficients
 from .spline import DEFAULT_HALF_EXTENT, spline_from_distances
 from .supervision import SignedDistance, sample_surface
@@ -92,18 +93,21 @@ class FittedField:
 #: Exact distances on the coarse grid within this many of its cells (beyond: an upper bound);
 #: the fine blocks, where detail is, use FitConfig.band.
 COARSE_BAND = 3.0
+#: Surface samples (beside the vertices) that decide where to refine: four per fine block of
+#: surface, at most this many (2M: about a second of coarse-field queries).
+SURFACE_SAMPLES_MAX = 2_000_000
 
 
-def several_sheets(faces: np.ndarray) -> bool:
-    """True when the mesh has open rims, non-manifold edges or several parts (one key sort)."""
+def mesh_parts(faces: np.ndarray) -> tuple[bool, np.ndarray]:
+    """(several sheets: the mesh has open rims, non-manifold edges or several parts; (m,) part label
+    of each face)."""
     from ..mesh.measures import face_components
 
     e = np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1)
     key = np.sort(e[:, 0] * (int(faces.max()) + 1) + e[:, 1])
     runs = np.diff(np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1], [True]])))
-    if (runs != 2).any():
-        return True
-    return face_components(int(faces.max()) + 1, faces)[0] > 1
+    count, labels = face_components(int(faces.max()) + 1, faces)
+    return bool((runs != 2).any() or count > 1), labels
 
 
 def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, should_stop=never_stop,
@@ -114,8 +118,9 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
     coarse_res = min(config.resolution, config.coarse_resolution)
     coarse_cell = 2 * DEFAULT_HALF_EXTENT / coarse_res
     winding = WindingNumbers(v, f, proxy_size=0.5 * coarse_cell)
+    several, parts = mesh_parts(f)
     values, exact = coarse_node_values(v, f, coarse_res, DEFAULT_HALF_EXTENT, COARSE_BAND, winding,
-                                       several_sheets(f), progress, should_stop)
+                                       several, progress, should_stop)
     coarse = spline_from_distances(values)
     del values
     metrics = {"exact_queries": float(exact), "coarse_resolution": float(coarse_res), "fine_blocks": 0.0,
@@ -127,16 +132,21 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
     resolution = config.resolution - config.resolution % coarse_res or coarse_res
     h = 2 * DEFAULT_HALF_EXTENT / resolution
     tolerance = config.refine_tolerance * h
-    error = np.abs(coarse.fast_values(v)).astype(np.float64)
-    buried = buried_vertices(v, f, error > max(coarse_cell, tolerance), 2 * h, winding)
-    error[buried] = 0.0
-    allowed = refined_blocks(coarse, v, error, h, tolerance, resolution + 3)
+    # the coarse field's miss at the input's vertices and at surface samples a few per fine block
+    area = float(np.linalg.norm(np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]]), axis=1).sum() / 2)
+    rng = rng if rng is not None else np.random.default_rng(config.seed)
+    samples, _ = sample_surface(mesh, int(min(SURFACE_SAMPLES_MAX, 4 * area / (BLOCK * h) ** 2)), rng)
+    points = np.concatenate([v, samples])
+    error = np.abs(coarse.fast_values(points)).astype(np.float64)
+    buried = buried_vertices(v, f, error[: len(v)] > max(coarse_cell, tolerance), 2 * h, winding)
+    error[: len(v)][buried] = 0.0
+    allowed = refined_blocks(coarse, points, error, h, tolerance, resolution + 3)
     metrics["refined_fraction"] = float((error > tolerance).mean())
     metrics["winding_queries"] = float(winding.queries)
     progress("refine", 0.2, {"grid": resolution, "blocks": int(allowed.sum())})
     if not allowed.any():
         return coarse, metrics
-    band, residual = fine_node_values(v, f, coarse, resolution, config.band, allowed, buried[f].all(axis=1))
+    band, residual = fine_node_values(v, f, coarse, resolution, config.band, allowed, winding, parts)
     check_stop(should_stop, "refine")
     progress("refine", 0.7, {"grid": resolution, "blocks": len(band.blocks)})
     coefficients = smoothed_coefficients(residual, band.table, band.blocks)

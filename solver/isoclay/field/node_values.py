@@ -29,6 +29,11 @@ FAR_AMBIGUOUS = 0.3
 #: Far nodes nearer than this many cells walk to their true nearest triangle (farther ones keep the
 #: nearest band node's, off by less than (offset / distance)^2 / 2 of the distance).
 FAR_WALK_CELLS = 6.0
+#: A fine node whose triangle's side and the coarse field's sign disagree while the coarse field
+#: is farther than this many fine cells from zero asks a winding number.
+DOUBT_CELLS = 2.0
+#: Nodes nearer the mesh than this many fine cells, in blocks where two parts meet, ask a winding number.
+JUNCTION_CELLS = 1.5
 #: A node whose offset from its nearest triangle makes a cosine below this with the normal
 #: lies beyond an edge of the mesh (a rim): its side is not the triangle's to say.
 RIM_COSINE = 0.3
@@ -71,6 +76,11 @@ def coarse_node_values(vertices, faces, resolution: int, half_extent: float, ban
         if several_sheets:
             trusted |= np.abs(side.reshape(-1)[ask]) < RIM_COSINE
         inside.reshape(-1)[ask[trusted]] = w.reshape(-1)[ask[trusted]] > 0.5
+        # a wall inside another part (or a flap in the open): its distance is not the solid's;
+        # such nodes count as far and take the distance of the solid's own surface
+        s_ask = side.reshape(-1)[ask]
+        hidden = ask[trusted & (np.abs(s_ask) >= RIM_COSINE) & ((s_ask < 0) != inside.reshape(-1)[ask])]
+        band.reshape(-1)[hidden] = False
 
     # far regions: the sign of the band around them, or winding numbers where that is mixed
     labels, count = scipy.ndimage.label(~band)
@@ -202,7 +212,7 @@ def refined_blocks(coarse_field, surface_points: np.ndarray, error: np.ndarray, 
 
 
 def fine_node_values(vertices, faces, coarse_field, resolution: int, band_cells: float, allowed: np.ndarray,
-                     buried_faces: np.ndarray):
+                     winding: WindingNumbers, parts: np.ndarray):
     """Residual node values (fine distance minus coarse field) on the fine blocks.
 
     Returns (BandDistances of the fine grid, residual (n, B, B, B) float64, 0 beyond the band)."""
@@ -214,7 +224,9 @@ def fine_node_values(vertices, faces, coarse_field, resolution: int, band_cells:
     centroid_block = np.floor((vertices[faces].mean(axis=1) + e) / h + 1.0).astype(np.int64) // BLOCK
     near = scipy.ndimage.binary_dilation(allowed, structure=np.ones((3, 3, 3), bool))
     centroid_block = np.clip(centroid_block, 0, allowed.shape[0] - 1)
-    keep = near[tuple(centroid_block.T)]
+    corners = vertices[faces]
+    large = np.linalg.norm(corners.max(axis=1) - corners.min(axis=1), axis=1) > BLOCK * h
+    keep = near[tuple(centroid_block.T)] | large  # a large triangle may reach blocks far from its centre
     kept = np.flatnonzero(keep)
     bd = band_distances(vertices, faces[kept], origin, h, (side_n,) * 3, band_cells * h, allowed)
     ijk, flat = bd.nodes()
@@ -223,8 +235,26 @@ def fine_node_values(vertices, faces, coarse_field, resolution: int, band_cells:
     d = bd.distance.reshape(-1)[flat].astype(np.float64)
     s = bd.side.reshape(-1)[flat]
     value = np.where(s < 0, -d, d)
-    buried = buried_faces[kept[np.maximum(bd.face.reshape(-1)[flat], 0)]]
-    value[buried] = -d[buried]  # walls inside another part stay inside
+    # the triangle's side and the coarse field disagree by more than the band's own detail: a
+    # wall inside another part, or a flap in the open; winding numbers decide (Jacobson et al. 2013)
+    doubt = ((s > 0) & (coarse < -DOUBT_CELLS * h)) | ((s < 0) & (coarse > DOUBT_CELLS * h))
+    # where two parts meet in a block, one part's wall may lie inside the other (a fin standing in
+    # a plate): nodes next to the mesh there ask too
+    part = parts[kept[np.maximum(bd.face.reshape(-1)[flat], 0)]]
+    block = flat // BLOCK**3
+    lo = np.full(len(bd.blocks), np.iinfo(np.int64).max)
+    hi = np.full(len(bd.blocks), -1)
+    np.minimum.at(lo, block, part)
+    np.maximum.at(hi, block, part)
+    doubt |= (lo[block] != hi[block]) & (d < JUNCTION_CELLS * h)
+    doubt = np.flatnonzero(doubt & (d >= winding.tolerance))
+    if len(doubt):
+        inside = winding(pts[doubt]) > 0.5
+        # where the winding number sides with the coarse field the triangle is a hidden wall or a
+        # flap, whose distance is not the solid's: the coarse field holds there
+        far_from_zero = np.abs(coarse[doubt]) > DOUBT_CELLS * h
+        value[doubt] = np.where(inside == (s[doubt] < 0), value[doubt],
+                                np.where(far_from_zero, coarse[doubt], np.where(inside, -d[doubt], d[doubt])))
     rim = np.abs(s) < RIM_COSINE  # beyond an open rim: the coarse sign and its membrane hold
     value[rim] = np.sign(coarse[rim]) * np.minimum(d[rim], np.abs(coarse[rim]))
     residual = np.zeros(bd.distance.shape, dtype=np.float64)
