@@ -116,10 +116,12 @@ def run_edit(
     config = module.Config.from_params(dict(params), prepared.normalization)
     fit_config = fit_config or FitConfig(seed=seed)
     seconds: dict = {"prepare": time.perf_counter() - t0}
+    warnings = tuple(prepared.check.warnings)
     if field is None:
         fitted = fit_field(prepared.unit, fit_config, progress, should_stop, np.random.default_rng(seed))
         field = fitted.field
         seconds["fit"] = fitted.seconds["total"]
+        warnings += thin_warnings(fitted.thin, prepared.normalization, fit_config.resolution)
     result = module.run(field, prepared.unit, config, progress, should_stop)
     seconds.update({k: float(v) for k, v in result.seconds.items()})
     world = prepared.normalization.mesh_from_unit(result.mesh)
@@ -137,14 +139,28 @@ def run_edit(
         "faces": world.n_faces,
         "watertight": measures.is_watertight(world.faces),
         "input": {"vertices": mesh.n_vertices, "faces": mesh.n_faces, "hash": prepared.mesh_hash},
-        "warnings": list(prepared.check.warnings),
+        "warnings": list(warnings),
         "fit": fit_config.to_dict(),
         **metrics,
     }
     return EditOutcome(
         world, field, result.field, prepared.normalization, prepared.mesh_hash,
-        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, prepared.check.warnings, report,
+        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, warnings, report,
     )
+
+
+def thin_warnings(thin, normalization: Normalization, resolution: int) -> tuple[str, ...]:
+    """One line per part the field cannot hold (field.thin), in the mesh's own units."""
+    from .field.spline import DEFAULT_HALF_EXTENT
+
+    cell = normalization.length_from_unit(2 * DEFAULT_HALF_EXTENT / resolution)
+    out = []
+    for part in thin:
+        x, y, z = normalization.from_unit(np.asarray(part["center"])[None])[0]
+        out.append(f"part {part['part'] + 1} is thinner than the field can hold near ({x:.4g}, {y:.4g}, {z:.4g}) "
+                   f"({part['share']:.0%} of its surface, under about {cell:.3g} units thick): it may come back "
+                   "thinner, with holes or missing; raise --field-resolution (up to 1024) or thicken it")
+    return tuple(out)
 
 
 def _jsonable(value):

@@ -88,6 +88,8 @@ class FittedField:
     config: FitConfig
     metrics: dict
     seconds: dict
+    # parts the field cannot hold (thin.thin_parts): [{"part", "center" (unit box), "share"}]
+    thin: tuple = ()
 
 
 #: Exact distances on the coarse grid within this many of its cells (beyond: an upper bound);
@@ -96,6 +98,16 @@ COARSE_BAND = 3.0
 #: Surface samples (beside the vertices) that decide where to refine: four per fine block of
 #: surface, at most this many (2M: about a second of coarse-field queries).
 SURFACE_SAMPLES_MAX = 2_000_000
+
+
+#: Surface samples for the thin-part check of a dense-only field.
+THIN_SAMPLES = 20_000
+
+
+def _thin(field, points, normals, parts, cell) -> list:
+    from .thin import thin_parts
+
+    return thin_parts(field, points, normals, parts, cell)
 
 
 def mesh_parts(faces: np.ndarray) -> tuple[bool, np.ndarray]:
@@ -127,6 +139,9 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
                "refined_fraction": 0.0}
     if config.resolution <= coarse_res:
         metrics["winding_queries"] = float(winding.queries)
+        rng = rng if rng is not None else np.random.default_rng(config.seed)
+        points, normals, faces_of = sample_surface(mesh, THIN_SAMPLES, rng, with_faces=True)
+        metrics["thin"] = _thin(coarse, points, normals, parts[faces_of], coarse_cell)
         return coarse, metrics
     check_stop(should_stop, "refine")
     resolution = config.resolution - config.resolution % coarse_res or coarse_res
@@ -135,7 +150,8 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
     # the coarse field's miss at the input's vertices and at surface samples a few per fine block
     area = float(np.linalg.norm(np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]]), axis=1).sum() / 2)
     rng = rng if rng is not None else np.random.default_rng(config.seed)
-    samples, _ = sample_surface(mesh, int(min(SURFACE_SAMPLES_MAX, 4 * area / (BLOCK * h) ** 2)), rng)
+    samples, sample_normals, sample_faces = sample_surface(mesh, int(min(SURFACE_SAMPLES_MAX, 4 * area / (BLOCK * h) ** 2)),
+                                                           rng, with_faces=True)
     points = np.concatenate([v, samples])
     error = np.abs(coarse.fast_values(points)).astype(np.float64)
     buried = buried_vertices(v, f, error[: len(v)] > max(coarse_cell, tolerance), 2 * h, winding)
@@ -145,6 +161,7 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
     metrics["winding_queries"] = float(winding.queries)
     progress("refine", 0.2, {"grid": resolution, "blocks": int(allowed.sum())})
     if not allowed.any():
+        metrics["thin"] = _thin(coarse, samples, sample_normals, parts[sample_faces], coarse_cell)
         return coarse, metrics
     band, residual = fine_node_values(v, f, coarse, resolution, config.band, allowed, winding, parts)
     check_stop(should_stop, "refine")
@@ -153,6 +170,9 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
     metrics["exact_queries"] += float(np.isfinite(band.distance).sum())
     metrics["fine_blocks"] = float(len(band.blocks))
     field = SparseSplineSDF(resolution, DEFAULT_HALF_EXTENT, coarse_res, band.blocks, torch.from_numpy(coefficients.astype(np.float32)), coarse)
+    metrics["winding_queries"] = float(winding.queries)
+    metrics["field_megabytes"] = field.nbytes() / 1e6
+    metrics["thin"] = _thin(field, samples, sample_normals, parts[sample_faces], h)
     progress("refine", 1.0, {"grid": resolution, "blocks": len(band.blocks)})
     return field, metrics
 
@@ -182,7 +202,8 @@ def fit_field(
     seconds["train"] = time.perf_counter() - t1
     seconds["total"] = time.perf_counter() - t0
     progress("fit", 1.0, {"seconds": seconds["total"]})
-    return FittedField(field, config, metrics, seconds)
+    thin = tuple(metrics.pop("thin", ()))
+    return FittedField(field, config, metrics, seconds, thin)
 
 
 def _refine(field: SDFField, mesh: TriangleMesh, config: FitConfig, rng, progress, should_stop) -> None:

@@ -32,7 +32,8 @@ FAR_WALK_CELLS = 6.0
 #: A fine node whose triangle's side and the coarse field's sign disagree while the coarse field
 #: is farther than this many fine cells from zero asks a winding number.
 DOUBT_CELLS = 2.0
-#: Nodes nearer the mesh than this many fine cells, in blocks where two parts meet, ask a winding number.
+#: In blocks where two parts meet, nodes nearer the mesh than this many fine cells, or whose
+#: triangle's side and the coarse field disagree, ask a winding number.
 JUNCTION_CELLS = 1.5
 #: A node whose offset from its nearest triangle makes a cosine below this with the normal
 #: lies beyond an edge of the mesh (a rim): its side is not the triangle's to say.
@@ -246,7 +247,7 @@ def fine_node_values(vertices, faces, coarse_field, resolution: int, band_cells:
     hi = np.full(len(bd.blocks), -1)
     np.minimum.at(lo, block, part)
     np.maximum.at(hi, block, part)
-    doubt |= (lo[block] != hi[block]) & (d < JUNCTION_CELLS * h)
+    doubt |= (lo[block] != hi[block]) & ((d < JUNCTION_CELLS * h) | ((s < 0) != (coarse < 0)))
     doubt = np.flatnonzero(doubt & (d >= winding.tolerance))
     if len(doubt):
         inside = winding(pts[doubt]) > 0.5
