@@ -60,7 +60,7 @@ def fit_key(mesh_hash_hex: str, config: FitConfig) -> str:
 def prepare_mesh(mesh: TriangleMesh, name: str = "mesh") -> Prepared:
     """Validate (InvalidMesh on unusable input) and normalise a mesh given in world units."""
     check = validate_mesh(mesh, name)
-    used = np.unique(check.mesh.faces)
+    used = measures.used_vertices(check.mesh.n_vertices, check.mesh.faces)
     normalization = Normalization.of(check.mesh.vertices[used])
     unit = normalization.mesh_to_unit(check.mesh)
     return Prepared(mesh, check, normalization, unit, mesh_hash(mesh.vertices, mesh.faces))
@@ -128,7 +128,7 @@ def run_edit(
     for name in LENGTH_VERTEX_VALUES & set(world.vertex_values):
         world.vertex_values[name] = (world.vertex_values[name] / prepared.normalization.scale).astype(np.float32)
     seconds["total"] = time.perf_counter() - t0
-    diagonal = measures.bbox_diagonal(prepared.check.mesh.vertices[np.unique(prepared.check.mesh.faces)])
+    diagonal = measures.bbox_diagonal(prepared.check.mesh.vertices[measures.used_vertices(prepared.check.mesh.n_vertices, prepared.check.mesh.faces)])
     metrics = world_metrics(result.metrics, prepared.normalization, diagonal)
     report = {
         "task": task,

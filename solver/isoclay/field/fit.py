@@ -113,13 +113,11 @@ def _thin(field, points, normals, parts, cell) -> list:
 def mesh_parts(faces: np.ndarray) -> tuple[bool, np.ndarray]:
     """(several sheets: the mesh has open rims, non-manifold edges or several parts; (m,) part label
     of each face)."""
-    from ..mesh.measures import face_components
+    from ..mesh.measures import edge_face_counts, face_components
 
-    e = np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1)
-    key = np.sort(e[:, 0] * (int(faces.max()) + 1) + e[:, 1])
-    runs = np.diff(np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1], [True]])))
+    _, counts, _ = edge_face_counts(faces)
     count, labels = face_components(int(faces.max()) + 1, faces)
-    return bool((runs != 2).any() or count > 1), labels
+    return bool((counts != 2).any() or count > 1), labels
 
 
 def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, should_stop=never_stop,
