@@ -115,11 +115,10 @@ def _orient_parts_outward(v, f, labels, n_parts):
 
 
 def _duplicate_count(points: np.ndarray) -> int:
-    """Vertices (n, 3) that repeat an earlier one exactly: one hash of the coordinates' bits and a
-    unique of those (a row-wise np.unique took 12 s on 2M vertices, measured; collisions of the
-    64-bit hash only lower the count, which is only reported)."""
-    bits = np.ascontiguousarray(points, dtype=np.float64).view(np.uint64).reshape(-1, 3)
-    with np.errstate(over="ignore"):
-        key = bits[:, 0] * np.uint64(0x9E3779B97F4A7C15) ^ bits[:, 1] * np.uint64(0xC2B2AE3D27D4EB4F) ^ bits[:, 2]
-    key = np.sort(key)
-    return int((key[1:] == key[:-1]).sum())
+    """Vertices (n, 3) that repeat an earlier one exactly: rows ordered by np.lexsort, equal
+    neighbours counted (a row-wise np.unique took 12 s on 2M vertices, measured)."""
+    p = np.asarray(points)
+    if len(p) < 2:
+        return 0
+    s = p[np.lexsort((p[:, 2], p[:, 1], p[:, 0]))]
+    return int((s[1:] == s[:-1]).all(axis=1).sum())
