@@ -265,9 +265,10 @@ def _vertex_faces(n_vertices: int, f: np.ndarray):
     return start, (order // 3).astype(np.int64)
 
 
-#: Above this many triangle-node pairs for a full-band scatter (about 3 s), triangles scatter
+#: Above this many triangle-node pairs for a full-band scatter (72M took 3.0 s against 10.8 s by
+#: spreading, measured on a 35k-vertex scan at 384 cells), triangles scatter
 #: only into the nodes within one cell and their faces spread through the band by sweeps.
-MAX_SCATTER_PAIRS = 60_000_000
+MAX_SCATTER_PAIRS = 300_000_000
 #: Forward and backward sweeps of the spreading pass (each reaches farther than a cell).
 SWEEPS = 2
 

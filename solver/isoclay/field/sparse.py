@@ -16,6 +16,7 @@ import torch
 
 from .base import SDFField
 from .distances import BLOCK
+from .kernels import _basis, _locate, spline_values
 from .spline import DEFAULT_HALF_EXTENT, SplineSDF, cubic_bspline_weights
 
 
@@ -119,47 +120,7 @@ class SparseSplineSDF(SDFField):
 def _dense_values(p: np.ndarray, spline: SplineSDF) -> np.ndarray:
     """A dense SplineSDF's values at (n, 3) float64 points (numba; same as its forward)."""
     c = spline.coefficients.detach().cpu().numpy()
-    return _spline_values(p, spline.half_extent, spline.cell, spline.resolution, c)
-
-
-@numba.njit(cache=True)
-def _basis(t):
-    one = 1.0 - t
-    t2 = t * t
-    t3 = t2 * t
-    return one * one * one / 6.0, (3 * t3 - 6 * t2 + 4) / 6.0, (-3 * t3 + 3 * t2 + 3 * t + 1) / 6.0, t3 / 6.0
-
-
-@numba.njit(cache=True)
-def _locate(x, e, h, r):
-    xc = min(max(x, -e), e)
-    u = (xc + e) / h
-    b = min(max(int(np.floor(u)), 0), r - 1)
-    return b, u - b, x - xc
-
-
-@numba.njit(cache=True)
-def _spline_values(p, e, h, r, c):
-    n = p.shape[0]
-    out = np.empty(n)
-    wx = np.empty(4)
-    wy = np.empty(4)
-    wz = np.empty(4)
-    for q in range(n):
-        bx, tx, ox = _locate(p[q, 0], e, h, r)
-        by, ty, oy = _locate(p[q, 1], e, h, r)
-        bz, tz, oz = _locate(p[q, 2], e, h, r)
-        wx[0], wx[1], wx[2], wx[3] = _basis(tx)
-        wy[0], wy[1], wy[2], wy[3] = _basis(ty)
-        wz[0], wz[1], wz[2], wz[3] = _basis(tz)
-        s = 0.0
-        for a in range(4):
-            for b in range(4):
-                wab = wx[a] * wy[b]
-                for d in range(4):
-                    s += wab * wz[d] * c[bx + a, by + b, bz + d]
-        out[q] = s + np.sqrt(ox * ox + oy * oy + oz * oz + 1e-12) - 1e-6
-    return out
+    return spline_values(p, spline.half_extent, spline.cell, spline.resolution, c)
 
 
 @numba.njit(cache=True)
@@ -215,26 +176,57 @@ def _residual_nodes(index, table, coef):
 
 
 @numba.njit(cache=True)
-def _with_halo(values, table, blocks):
-    """(n, B+2, B+2, B+2) copies of each block with one node of its neighbours around (0 where absent)."""
-    n = blocks.shape[0]
-    out = np.zeros((n, BLOCK + 2, BLOCK + 2, BLOCK + 2))
-    nb0, nb1, nb2 = table.shape
-    for b in range(n):
-        for a in range(BLOCK + 2):
-            i = blocks[b, 0] * BLOCK + a - 1
-            for c in range(BLOCK + 2):
-                j = blocks[b, 1] * BLOCK + c - 1
-                for d in range(BLOCK + 2):
-                    k = blocks[b, 2] * BLOCK + d - 1
-                    if i < 0 or j < 0 or k < 0:
-                        continue
-                    bi, bj, bk = i // BLOCK, j // BLOCK, k // BLOCK
-                    if bi >= nb0 or bj >= nb1 or bk >= nb2:
-                        continue
-                    blk = table[bi, bj, bk]
-                    if blk >= 0:
-                        out[b, a, c, d] = values[blk, i % BLOCK, j % BLOCK, k % BLOCK]
+def _at(values, table, i, j, k):
+    if i < 0 or j < 0 or k < 0:
+        return 0.0
+    bi, bj, bk = i // BLOCK, j // BLOCK, k // BLOCK
+    if bi >= table.shape[0] or bj >= table.shape[1] or bk >= table.shape[2]:
+        return 0.0
+    blk = table[bi, bj, bk]
+    return values[blk, i % BLOCK, j % BLOCK, k % BLOCK] if blk >= 0 else 0.0
+
+
+@numba.njit(cache=True)
+def _neighbour(table, blocks, b, axis, step):
+    i, j, k = blocks[b, 0], blocks[b, 1], blocks[b, 2]
+    if axis == 0:
+        i += step
+    elif axis == 1:
+        j += step
+    else:
+        k += step
+    if i < 0 or j < 0 or k < 0 or i >= table.shape[0] or j >= table.shape[1] or k >= table.shape[2]:
+        return -1
+    return table[i, j, k]
+
+
+@numba.njit(cache=True)
+def _stencil(values, table, blocks, axis, side, centre):
+    """out = side * (v[-1] + v[+1]) + centre * v along one axis (absent nodes count as 0).
+    Works on values moved so ``axis`` is the last one; neighbour blocks looked up once each."""
+    out = np.empty_like(values)
+    last = BLOCK - 1
+    for b in range(blocks.shape[0]):
+        lo = _neighbour(table, blocks, b, axis, -1)
+        hi = _neighbour(table, blocks, b, axis, 1)
+        for p in range(BLOCK):
+            for q in range(BLOCK):
+                for r in range(BLOCK):
+                    if axis == 0:
+                        c = values[b, r, p, q]
+                        before = values[b, r - 1, p, q] if r > 0 else (values[lo, last, p, q] if lo >= 0 else 0.0)
+                        after = values[b, r + 1, p, q] if r < last else (values[hi, 0, p, q] if hi >= 0 else 0.0)
+                        out[b, r, p, q] = side * (before + after) + centre * c
+                    elif axis == 1:
+                        c = values[b, p, r, q]
+                        before = values[b, p, r - 1, q] if r > 0 else (values[lo, p, last, q] if lo >= 0 else 0.0)
+                        after = values[b, p, r + 1, q] if r < last else (values[hi, p, 0, q] if hi >= 0 else 0.0)
+                        out[b, p, r, q] = side * (before + after) + centre * c
+                    else:
+                        c = values[b, p, q, r]
+                        before = values[b, p, q, r - 1] if r > 0 else (values[lo, p, q, last] if lo >= 0 else 0.0)
+                        after = values[b, p, q, r + 1] if r < last else (values[hi, p, q, 0] if hi >= 0 else 0.0)
+                        out[b, p, q, r] = side * (before + after) + centre * c
     return out
 
 
@@ -243,71 +235,44 @@ def smoothed_coefficients(values: np.ndarray, table: np.ndarray, blocks: np.ndar
 
     values : (n, B, B, B) node values; returns coefficients of the same shape.
     """
-    v = np.asarray(values, dtype=np.float64)
-    s = slice(1, BLOCK + 1)
-    halo = _with_halo(v, table, blocks)
-    lap = np.zeros_like(v)
-    for axis in range(3):
-        lo = [s, s, s]
-        hi = [s, s, s]
-        lo[axis] = slice(0, BLOCK)
-        hi[axis] = slice(2, BLOCK + 2)
-        lap += halo[(slice(None), *lo)] + halo[(slice(None), *hi)] - 2.0 * v
+    v = np.ascontiguousarray(values, dtype=np.float64)
+    b = np.ascontiguousarray(blocks, dtype=np.int64)
+    lap = sum(_stencil(v, table, b, axis, 1.0, -2.0) for axis in range(3))
     for _ in range(2):
         for axis in range(3):
-            halo = _with_halo(lap, table, blocks)
-            lo = [s, s, s]
-            hi = [s, s, s]
-            lo[axis] = slice(0, BLOCK)
-            hi[axis] = slice(2, BLOCK + 2)
-            lap = (halo[(slice(None), *lo)] + halo[(slice(None), *hi)] + 4.0 * lap) / 6.0
+            lap = _stencil(lap, table, b, axis, 1.0 / 6.0, 4.0 / 6.0)
     return v - lap / 6.0
 
 
-def _basis_matrix(axis: np.ndarray, spline: SplineSDF) -> np.ndarray:
-    """(len(axis), R + 3) cubic B-spline weights of a dense spline's coefficients at coordinates."""
-    e, h, r = spline.half_extent, spline.cell, spline.resolution
-    x = np.clip(axis, -e, e)
-    u = (x + e) / h
-    base = np.clip(np.floor(u), 0, r - 1).astype(np.int64)
-    w = cubic_bspline_weights(torch.from_numpy(u - base)).numpy()
-    m = np.zeros((len(axis), r + 3))
-    for o in range(4):
-        m[np.arange(len(axis)), base + o] = w[:, o]
-    return m
+def sparse_spline_from_function(sdf, resolution: int = 1024, coarse_resolution: int = 128, band_cells: float = 4.0,
+                                half_extent: float = DEFAULT_HALF_EXTENT) -> SparseSplineSDF:
+    """A SparseSplineSDF of a field known everywhere (an analytic SDFField, for references and
+    tests): the coarse spline from its values at every coarse node, fine blocks wherever a fine
+    node lies within ``band_cells`` fine cells of the surface (no refinement criterion: every
+    block near the surface is stored). Same quasi-interpolant as fitting (spline.spline_from_distances)."""
+    from ..geometry.derivatives import values as field_values
+    from .spline import spline_from_distances
 
-
-def grid_values(field: "SparseSplineSDF | SplineSDF", axis: np.ndarray) -> np.ndarray:
-    """The field at every node of the tensor grid axis x axis x axis: (S, S, S) float64.
-
-    The coarse spline is separable (three matrix products, no per-node gathers); the fine
-    residual is added only at nodes inside the support of a stored block, so the cost grows
-    with the refined surface, not the grid."""
-    axis = np.asarray(axis, dtype=np.float64)
-    spline = field.coarse if isinstance(field, SparseSplineSDF) else field
-    m = _basis_matrix(axis, spline)
-    c = spline.coefficients.detach().double().cpu().numpy()
-    out = np.einsum("ia,abc->ibc", m, c)
-    out = np.einsum("jb,ibc->ijc", m, out)
-    out = np.einsum("kc,ijc->ijk", m, out)
-    outside = axis - np.clip(axis, -spline.half_extent, spline.half_extent)
-    o2 = outside**2
-    out += np.sqrt(o2[:, None, None] + o2[None, :, None] + o2[None, None, :] + 1e-12) - 1e-6
-    if not isinstance(field, SparseSplineSDF) or len(field.blocks) == 0:
-        return out
-    # nodes whose 4x4x4 fine support touches a stored block
-    h, e = field.cell, field.half_extent
-    b = field.blocks.cpu().numpy().astype(np.int64)
-    lo_pos = -e + h * (b * BLOCK - 1 - 2)  # lattice index k sits at -e + h (k - 1); support reaches 2 cells
-    hi_pos = -e + h * (b * BLOCK + BLOCK - 1 - 1 + 2)
-    first = np.searchsorted(axis, lo_pos, side="left")
-    last = np.searchsorted(axis, hi_pos, side="right")
-    marked = np.zeros(out.shape, dtype=bool)
-    for (i0, j0, k0), (i1, j1, k1) in zip(first, last):
-        marked[i0:i1, j0:j1, k0:k1] = True
-    flat = np.flatnonzero(marked)
-    i, j, k = np.unravel_index(flat, out.shape)
-    pts = np.stack([axis[i], axis[j], axis[k]], axis=1)
-    out.reshape(-1)[flat] += _residual_values(pts, e, h, field.resolution, field.table(),
-                                              field.coefficients.detach().cpu().numpy())
-    return out
+    hc = 2.0 * half_extent / coarse_resolution
+    axis = -half_extent + hc * (np.arange(coarse_resolution + 3) - 1.0)
+    grid = np.stack(np.meshgrid(axis, axis, axis, indexing="ij"), axis=-1).reshape(-1, 3)
+    coarse = spline_from_distances(field_values(sdf, grid).astype(np.float64).reshape((len(axis),) * 3), half_extent)
+    h = 2.0 * half_extent / resolution
+    side = resolution + 3
+    # candidate fine blocks: those whose centre lies within the band plus a block's half-diagonal
+    nb = -(-side // BLOCK)
+    centres = -half_extent + h * ((np.indices((nb,) * 3).reshape(3, -1).T + 0.5) * BLOCK - 1.5)
+    near = np.abs(field_values(sdf, centres)) < band_cells * h + 0.5 * np.sqrt(3) * BLOCK * h
+    blocks = np.indices((nb,) * 3).reshape(3, -1).T[near].astype(np.int32)
+    local = np.indices((BLOCK,) * 3).reshape(3, -1).T
+    ijk = (blocks[:, None, :].astype(np.int64) * BLOCK + local[None]).reshape(-1, 3)
+    pts = -half_extent + h * (ijk - 1.0)
+    exact = field_values(sdf, pts).astype(np.float64)
+    residual = np.where(np.abs(exact) < band_cells * h, exact - coarse.fast_values(pts), 0.0)
+    residual = residual.reshape(len(blocks), BLOCK, BLOCK, BLOCK)
+    table = np.full((nb,) * 3, -1, dtype=np.int32)
+    table[tuple(blocks.T)] = np.arange(len(blocks), dtype=np.int32)
+    keep = np.abs(residual).reshape(len(blocks), -1).max(axis=1) > 0
+    coefficients = smoothed_coefficients(residual, table, blocks)
+    blocks, coefficients = blocks[keep], coefficients[keep]
+    return SparseSplineSDF(resolution, half_extent, coarse_resolution, blocks, torch.from_numpy(coefficients.astype(np.float32)), coarse)
