@@ -23,6 +23,19 @@ def _locate(x, e, h, r):
 
 
 @numba.njit(cache=True)
+def weights_at(p, q, e, h, r, wx, wy, wz):
+    """Fill the per-axis B-spline weights (4,) of point q of p (n, 3) on a grid of r cells over
+    [-e, e]^3; returns the base node per axis and the point's offset outside the box."""
+    bx, tx, ox = _locate(p[q, 0], e, h, r)
+    by, ty, oy = _locate(p[q, 1], e, h, r)
+    bz, tz, oz = _locate(p[q, 2], e, h, r)
+    wx[0], wx[1], wx[2], wx[3] = _basis(tx)
+    wy[0], wy[1], wy[2], wy[3] = _basis(ty)
+    wz[0], wz[1], wz[2], wz[3] = _basis(tz)
+    return bx, by, bz, ox, oy, oz
+
+
+@numba.njit(cache=True)
 def spline_values(p, e, h, r, c):
     n = p.shape[0]
     out = np.empty(n)
@@ -30,12 +43,7 @@ def spline_values(p, e, h, r, c):
     wy = np.empty(4)
     wz = np.empty(4)
     for q in range(n):
-        bx, tx, ox = _locate(p[q, 0], e, h, r)
-        by, ty, oy = _locate(p[q, 1], e, h, r)
-        bz, tz, oz = _locate(p[q, 2], e, h, r)
-        wx[0], wx[1], wx[2], wx[3] = _basis(tx)
-        wy[0], wy[1], wy[2], wy[3] = _basis(ty)
-        wz[0], wz[1], wz[2], wz[3] = _basis(tz)
+        bx, by, bz, ox, oy, oz = weights_at(p, q, e, h, r, wx, wy, wz)
         s = 0.0
         for a in range(4):
             for b in range(4):

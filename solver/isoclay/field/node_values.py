@@ -238,7 +238,11 @@ def fine_node_values(vertices, faces, coarse_field, resolution: int, band_cells:
     value = np.where(s < 0, -d, d)
     # the triangle's side and the coarse field disagree by more than the band's own detail: a
     # wall inside another part, or a flap in the open; winding numbers decide (Jacobson et al. 2013)
-    doubt = ((s > 0) & (coarse < -DOUBT_CELLS * h)) | ((s < 0) & (coarse > DOUBT_CELLS * h))
+    # with several parts a wall may lie inside another part however near its surface: any
+    # disagreement counts there (the coarse field is shallow near such walls, measured -1.6 cells
+    # five cells under a plate's top beside a fin standing in it)
+    margin = 0.0 if parts.max() > 0 else DOUBT_CELLS * h
+    doubt = ((s > 0) & (coarse < -margin)) | ((s < 0) & (coarse > margin))
     # where two parts meet in a block, one part's wall may lie inside the other (a fin standing in
     # a plate): nodes next to the mesh there ask too
     part = parts[kept[np.maximum(bd.face.reshape(-1)[flat], 0)]]

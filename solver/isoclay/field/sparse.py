@@ -16,7 +16,7 @@ import torch
 
 from .base import SDFField
 from .distances import BLOCK
-from .kernels import _basis, _locate, spline_values
+from .kernels import spline_values, weights_at
 from .spline import DEFAULT_HALF_EXTENT, SplineSDF, cubic_bspline_weights
 
 
@@ -131,12 +131,7 @@ def _residual_values(p, e, h, r, table, coef):
     wy = np.empty(4)
     wz = np.empty(4)
     for q in range(n):
-        bx, tx, _ = _locate(p[q, 0], e, h, r)
-        by, ty, _ = _locate(p[q, 1], e, h, r)
-        bz, tz, _ = _locate(p[q, 2], e, h, r)
-        wx[0], wx[1], wx[2], wx[3] = _basis(tx)
-        wy[0], wy[1], wy[2], wy[3] = _basis(ty)
-        wz[0], wz[1], wz[2], wz[3] = _basis(tz)
+        bx, by, bz, _, _, _ = weights_at(p, q, e, h, r, wx, wy, wz)
         s = 0.0
         for a in range(4):
             i = bx + a
@@ -173,17 +168,6 @@ def _residual_nodes(index, table, coef):
                         s += w[a] * w[b] * w[d] * coef[blk, i % BLOCK, j % BLOCK, k % BLOCK]
         out[q] = s
     return out
-
-
-@numba.njit(cache=True)
-def _at(values, table, i, j, k):
-    if i < 0 or j < 0 or k < 0:
-        return 0.0
-    bi, bj, bk = i // BLOCK, j // BLOCK, k // BLOCK
-    if bi >= table.shape[0] or bj >= table.shape[1] or bk >= table.shape[2]:
-        return 0.0
-    blk = table[bi, bj, bk]
-    return values[blk, i % BLOCK, j % BLOCK, k % BLOCK] if blk >= 0 else 0.0
 
 
 @numba.njit(cache=True)
@@ -276,3 +260,52 @@ def sparse_spline_from_function(sdf, resolution: int = 1024, coarse_resolution: 
     coefficients = smoothed_coefficients(residual, table, blocks)
     blocks, coefficients = blocks[keep], coefficients[keep]
     return SparseSplineSDF(resolution, half_extent, coarse_resolution, blocks, torch.from_numpy(coefficients.astype(np.float32)), coarse)
+
+
+def _basis_matrix(axis: np.ndarray, spline: SplineSDF) -> np.ndarray:
+    """(len(axis), R + 3) cubic B-spline weights of a dense spline's coefficients at coordinates."""
+    e, h, r = spline.half_extent, spline.cell, spline.resolution
+    x = np.clip(axis, -e, e)
+    u = (x + e) / h
+    base = np.clip(np.floor(u), 0, r - 1).astype(np.int64)
+    w = cubic_bspline_weights(torch.from_numpy(u - base)).numpy()
+    m = np.zeros((len(axis), r + 3))
+    for o in range(4):
+        m[np.arange(len(axis)), base + o] = w[:, o]
+    return m
+
+
+def grid_values(field: "SparseSplineSDF | SplineSDF", axis: np.ndarray) -> np.ndarray:
+    """The field at every node of the tensor grid axis x axis x axis: (S, S, S) float64.
+
+    The coarse spline is separable (three matrix products, no per-node gathers); the fine
+    residual is added only at nodes inside the support of a stored block, so the cost grows
+    with the refined surface, not the grid."""
+    axis = np.asarray(axis, dtype=np.float64)
+    spline = field.coarse if isinstance(field, SparseSplineSDF) else field
+    m = _basis_matrix(axis, spline)
+    c = spline.coefficients.detach().double().cpu().numpy()
+    out = np.einsum("ia,abc->ibc", m, c)
+    out = np.einsum("jb,ibc->ijc", m, out)
+    out = np.einsum("kc,ijc->ijk", m, out)
+    outside = axis - np.clip(axis, -spline.half_extent, spline.half_extent)
+    o2 = outside**2
+    out += np.sqrt(o2[:, None, None] + o2[None, :, None] + o2[None, None, :] + 1e-12) - 1e-6
+    if not isinstance(field, SparseSplineSDF) or len(field.blocks) == 0:
+        return out
+    # nodes whose 4x4x4 fine support touches a stored block
+    h, e = field.cell, field.half_extent
+    b = field.blocks.cpu().numpy().astype(np.int64)
+    lo_pos = -e + h * (b * BLOCK - 1 - 2)  # lattice index k sits at -e + h (k - 1); support reaches 2 cells
+    hi_pos = -e + h * (b * BLOCK + BLOCK - 1 - 1 + 2)
+    first = np.searchsorted(axis, lo_pos, side="left")
+    last = np.searchsorted(axis, hi_pos, side="right")
+    marked = np.zeros(out.shape, dtype=bool)
+    for (i0, j0, k0), (i1, j1, k1) in zip(first, last):
+        marked[i0:i1, j0:j1, k0:k1] = True
+    flat = np.flatnonzero(marked)
+    i, j, k = np.unravel_index(flat, out.shape)
+    pts = np.stack([axis[i], axis[j], axis[k]], axis=1)
+    out.reshape(-1)[flat] += _residual_values(pts, e, h, field.resolution, field.table(),
+                                              field.coefficients.detach().cpu().numpy())
+    return out

@@ -23,7 +23,9 @@ def not_held(field, points: np.ndarray, normals: np.ndarray, depth: float) -> np
 def thin_parts(field, points, normals, part_of_point: np.ndarray, cell: float) -> list[dict]:
     """Parts the field cannot hold: [{"part": i, "center": (3,) unit box, "share": fraction of the
     part's samples}], largest share first."""
-    lost = not_held(field, points, normals, HELD_DEPTH_CELLS * cell)
+    # not held half a cell in nor a cell and a half in: nothing solid there (a sharp edge the field
+    # rounds is held farther in)
+    lost = not_held(field, points, normals, HELD_DEPTH_CELLS * cell) & not_held(field, points, normals, 3 * HELD_DEPTH_CELLS * cell)
     out = []
     parts = np.unique(part_of_point)
     for part in parts:
