@@ -43,9 +43,15 @@ def test_scattered_distances_are_libigls(monkeypatch, spread):
     else:  # spreading walks to the nearest triangle; on a 12-triangle box a walk may stop one short
         assert (np.abs(found - exact) < 1e-6).mean() > 0.999
         np.testing.assert_allclose(found, exact, rtol=0.02, atol=1e-6)
-    grid = origin + cell * np.indices(shape).reshape(3, -1).T
-    inside_band = np.sqrt(igl.point_mesh_squared_distance(grid, v, f)[0]) < band
-    assert abs(int(inside_band.sum()) - len(flat)) <= 0.002 * len(flat)
+    grid_ijk = np.indices(shape).reshape(3, -1).T
+    d_all = np.sqrt(igl.point_mesh_squared_distance(origin + cell * grid_ijk, v, f)[0])
+    ours = np.zeros(len(grid_ijk), bool)
+    ours[np.ravel_multi_index(ijk.T, shape)] = True
+    missing = (d_all < band) & ~ours
+    if not spread:
+        assert missing.sum() <= 0.002 * len(flat)
+    else:  # spreading may not reach the band's outer edge (those nodes get the far-field bound)
+        assert missing.sum() <= 0.03 * len(flat) and d_all[missing].min(initial=band) > 0.5 * band
 
 
 def test_analytic_sphere_and_torus_at_fine_resolutions():

@@ -16,13 +16,11 @@ COARSE_RESOLUTION = 128
 #: distance transform's indices (~150 MB at 128 cells, measured peak minus the mesh).
 COARSE_NODE_BYTES = 64
 #: Bytes per fine band node while fitting (block arrays of distances, sides, faces, residuals and two
-#: stencil buffers) and fine nodes per squared fine resolution when the whole surface is refined (a
-#: sphere of radius 0.4 at 1024: 23M block nodes = 22 R^2).
+#: stencil buffers) and fine nodes per squared fine resolution when the whole surface is refined at
+#: the full resolution (the worst case: thin parts take the fine grid there): a sphere of radius 0.4
+#: at 1024 holds 23M block nodes = 22 R^2; twice that for surfaces of twice its area.
 FINE_NODE_BYTES = 48
-FINE_NODES_PER_R2 = 22
-#: The fine grid follows the input's edges (2 cells a median edge); an edge estimated from the face
-#: count on a unit-box surface of area ~2 (common practice, no source).
-SURFACE_AREA = 2.0
+FINE_NODES_PER_R2 = 44
 
 
 def estimate_memory(task: str, n_vertices: int, n_faces: int, params: dict) -> int:
@@ -37,9 +35,7 @@ def estimate_memory(task: str, n_vertices: int, n_faces: int, params: dict) -> i
     coarse = min(resolution, COARSE_RESOLUTION)
     field = COARSE_NODE_BYTES * (coarse + 3) ** 3
     if resolution > coarse:
-        edge = math.sqrt(4 * SURFACE_AREA / math.sqrt(3) / max(n_faces, 1))
-        fine = min(resolution, max(2 * coarse, 2 * 1.3 / edge))
-        field += FINE_NODE_BYTES * FINE_NODES_PER_R2 * int(fine) ** 2
+        field += FINE_NODE_BYTES * FINE_NODES_PER_R2 * resolution**2 + 4 * (resolution // 8 + 1) ** 3
     output = _number(params.get("resolution"), 256)
     result = 200 * int(2.4 * output**2)
     return (800 << 20) + field + 300 * (n_vertices + n_faces) + mesh + result

@@ -184,18 +184,20 @@ def _try_face(v, f, normals, t, px, py, pz, b, li, lj, lk, band2, dist2, side, f
 
 
 @numba.njit(cache=True)
-def _propagate(v, f, normals, origin, cell, band, table, blocks, dist2, side, face, backward):
+def _propagate(v, f, normals, origin, cell, band, shape, table, blocks, dist2, side, face, backward):
     """One sweep: every node tries the nearest faces of its six neighbours (in place, so a
     forward and a backward sweep carry a face across the band)."""
     band2 = band * band
     n = blocks.shape[0]
-    sx, sy, sz = table.shape[0] * BLOCK, table.shape[1] * BLOCK, table.shape[2] * BLOCK
+    sx, sy, sz = shape[0], shape[1], shape[2]
     for q in range(n):
         b = n - 1 - q if backward else q
         for r in range(BLOCK * BLOCK * BLOCK):
             rr = BLOCK * BLOCK * BLOCK - 1 - r if backward else r
             li, lj, lk = rr // (BLOCK * BLOCK), (rr // BLOCK) % BLOCK, rr % BLOCK
             i, j, k = blocks[b, 0] * BLOCK + li, blocks[b, 1] * BLOCK + lj, blocks[b, 2] * BLOCK + lk
+            if i >= sx or j >= sy or k >= sz:  # the padding of blocks past the grid's end
+                continue
             px, py, pz = origin[0] + cell * i, origin[1] + cell * j, origin[2] + cell * k
             for a in range(6):
                 ni, nj, nk = i, j, k
@@ -370,7 +372,7 @@ def band_distances(vertices, faces, origin, cell: float, shape, band: float, all
         _scatter(v, f, normals, origin, float(cell), float(min(band, cell)), shape, table, dist2, side, face)
         for _ in range(SWEEPS):
             for backward in (False, True):
-                _propagate(v, f, normals, origin, float(cell), float(band), table, blocks, dist2, side, face, backward)
+                _propagate(v, f, normals, origin, float(cell), float(band), shape, table, blocks, dist2, side, face, backward)
         start, around = _vertex_faces(len(v), f)
         _descend(v, f, normals, origin, float(cell), float(band), blocks, dist2, side, face, start, around)
     used = np.isfinite(dist2).reshape(n, -1).any(axis=1)
