@@ -61,7 +61,7 @@ def fit_key(mesh_hash_hex: str, config: FitConfig) -> str:
 def prepare_mesh(mesh: TriangleMesh, name: str = "mesh") -> Prepared:
     """Validate (InvalidMesh on unusable input) and normalise a mesh given in world units."""
     check = validate_mesh(mesh, name)
-    used = np.unique(check.mesh.faces)
+    used = measures.used_vertices(check.mesh.n_vertices, check.mesh.faces)
     normalization = Normalization.of(check.mesh.vertices[used])
     unit = normalization.mesh_to_unit(check.mesh)
     return Prepared(mesh, check, normalization, unit, mesh_hash(mesh.vertices, mesh.faces))
@@ -120,10 +120,12 @@ def run_edit(
     config = module.Config.from_params(dict(params), prepared.normalization)
     fit_config = fit_config or FitConfig(seed=seed)
     seconds: dict = {"prepare": time.perf_counter() - t0}
+    warnings = tuple(prepared.check.warnings)
     if field is None:
         fitted = fit_field(prepared.unit, fit_config, progress, should_stop, np.random.default_rng(seed))
         field = fitted.field
         seconds["fit"] = fitted.seconds["total"]
+        warnings += thin_warnings(fitted.thin, prepared.normalization, fit_config.resolution)
     result = module.run(field, prepared.unit, config, progress, should_stop)
     seconds.update({k: float(v) for k, v in result.seconds.items()})
     t1 = time.perf_counter()
@@ -134,7 +136,7 @@ def run_edit(
     for name in LENGTH_VERTEX_VALUES & set(world.vertex_values):
         world.vertex_values[name] = (world.vertex_values[name] / prepared.normalization.scale).astype(np.float32)
     seconds["total"] = time.perf_counter() - t0
-    diagonal = measures.bbox_diagonal(prepared.check.mesh.vertices[np.unique(prepared.check.mesh.faces)])
+    diagonal = measures.bbox_diagonal(prepared.check.mesh.vertices[measures.used_vertices(prepared.check.mesh.n_vertices, prepared.check.mesh.faces)])
     metrics = world_metrics(result.metrics, prepared.normalization, diagonal)
     report = {
         "task": task,
@@ -145,13 +147,13 @@ def run_edit(
         "faces": world.n_faces,
         "watertight": measures.is_watertight(world.faces),
         "input": {"vertices": mesh.n_vertices, "faces": mesh.n_faces, "hash": prepared.mesh_hash},
-        "warnings": list(prepared.check.warnings),
+        "warnings": list(warnings),
         "fit": fit_config.to_dict(),
         **metrics,
     }
     return EditOutcome(
         world, field, result.field, prepared.normalization, prepared.mesh_hash,
-        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, prepared.check.warnings, report, correspondence,
+        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, warnings, report, correspondence,
     )
 
 
@@ -172,6 +174,20 @@ def source_correspondence(prepared: Prepared, result_unit: TriangleMesh, rest_po
         raise ValueError(f"rest_points has shape {points.shape}, expected ({result_unit.n_vertices}, 3)")
     unit_input = prepared.normalization.to_unit(given.vertices)
     return closest_surface_points(points, unit_input, given.faces)
+
+
+def thin_warnings(thin, normalization: Normalization, resolution: int) -> tuple[str, ...]:
+    """One line per part the field cannot hold (field.thin), in the mesh's own units."""
+    from .field.spline import DEFAULT_HALF_EXTENT
+
+    cell = normalization.length_from_unit(2 * DEFAULT_HALF_EXTENT / resolution)
+    out = []
+    for part in thin:
+        x, y, z = normalization.from_unit(np.asarray(part["center"])[None])[0]
+        out.append(f"part {part['part'] + 1} is thinner than the field can hold near ({x:.4g}, {y:.4g}, {z:.4g}) "
+                   f"({part['share']:.0%} of its surface, under about {cell:.3g} units thick): it may come back "
+                   "thinner, with holes or missing; raise --field-resolution (up to 1024) or thicken it")
+    return tuple(out)
 
 
 def _jsonable(value):

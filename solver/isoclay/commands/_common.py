@@ -63,8 +63,11 @@ def run_task(args, ui, task: str, params: dict, prepared: Prepared):
         # the service returns plain arrays; keep the input's UVs/materials for keep-topology writes
         return type(outcome)(TriangleMesh(mesh.vertices, mesh.faces, mesh.vertex_values, prepared.world.source),
                              outcome.report, outcome.metrics, outcome.node_id, outcome.job_id, outcome.warnings)
-    return run_edit(prepared.world, task, params, fit_config=config, progress=ui.progress,
-                    should_stop=ui.should_stop, prepared=prepared)
+    outcome = run_edit(prepared.world, task, params, fit_config=config, progress=ui.progress,
+                       should_stop=ui.should_stop, prepared=prepared)
+    for line in outcome.warnings[len(prepared.check.warnings):]:  # what the fit found (thin parts)
+        ui.warn(line)
+    return outcome
 
 
 def fit_config_from(args) -> FitConfig:

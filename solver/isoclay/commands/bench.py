@@ -9,7 +9,7 @@ import time
 
 #: Benchmark sections: module under isoclay.bench with run(quick) -> dict. Sections whose
 #: module is not part of this installation are listed as missing, not silently dropped.
-SECTIONS = ("core", "deform", "smooth", "service", "batch")
+SECTIONS = ("core", "deform", "smooth", "service", "batch", "remesh")
 
 
 def add_parser(sub):

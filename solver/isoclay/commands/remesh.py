@@ -10,7 +10,8 @@ def add_parser(sub):
     p = sub.add_parser("remesh", help="turn a broken scan into a clean watertight mesh",
                        description="Fit a field to the mesh and extract its surface as a closed, consistently oriented mesh.")
     add_input_output(p)
-    p.add_argument("--resolution", type=int, default=256, help="marching-cubes cells along the longest side (default 256)")
+    p.add_argument("--resolution", type=int, default=None,
+                   help="marching-cubes cells along the longest side (default 256, finer where the field holds thinner parts)")
     p.add_argument("--target-faces", type=int, default=0, help="decimate to at most this many faces (default: keep all)")
     add_fit_options(p)
     return p
@@ -22,5 +23,7 @@ def run(args, ui) -> int:
     prepared = load_input(args.mesh, ui)
     outcome = run_edit(prepared.world, "remesh", {"resolution": args.resolution, "target_faces": args.target_faces},
                        fit_config=config, progress=ui.progress, should_stop=ui.should_stop, prepared=prepared)
+    for line in outcome.warnings[len(prepared.check.warnings):]:
+        ui.warn(line)
     write_outputs(outcome, out, args.report, ui)
     return 0

@@ -78,8 +78,9 @@ def node_grid_of(field, resolution: int = 128, half_extent: float | None = None)
 
     A SplineSDF gives its exact node values from its coefficients (B-spline at integer
     offsets: (c[k-1] + 4 c[k] + c[k+1]) / 6 per axis, mirror at the ends, the inverse of
-    spline_from_node_values); any other field is sampled at the nodes of a grid with the
-    given resolution.
+    spline_from_node_values); a SparseSplineSDF is evaluated at the nodes of a grid with the
+    given resolution through its separable coarse spline plus its fine blocks; any other field is
+    sampled node by node.
     """
     from ..field.spline import DEFAULT_HALF_EXTENT, SplineSDF
 
@@ -88,9 +89,14 @@ def node_grid_of(field, resolution: int = 128, half_extent: float | None = None)
         for axis in range(3):
             c = _node_stencil(c, axis)
         return NodeGrid(c, field.half_extent)
+    from ..field.sparse import SparseSplineSDF, grid_values
     from ..geometry import values
 
     e = DEFAULT_HALF_EXTENT if half_extent is None else float(half_extent)
+    if isinstance(field, SparseSplineSDF):  # separable coarse part, fine residual only near its blocks
+        grid = NodeGrid(np.zeros((1, 1, 1)), e)
+        grid.values = grid_values(field, -e + 2.0 * e / resolution * (np.arange(resolution + 3) - 1.0))
+        return grid
     grid = NodeGrid(np.zeros((resolution + 3,) * 3), e)
     a = grid.axis()
     out = np.empty(grid.values.shape)

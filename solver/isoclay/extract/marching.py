@@ -183,6 +183,12 @@ def narrow_band_values(field, lo, cell: float, cells_per_axis, progress=no_progr
     return lattice, exact, evaluations
 
 
+#: Cells per side of the chunks a large grid is meshed in (a multiple of COARSEST_STEP): a 256^3
+#: chunk holds 17M nodes (about 100 MB of values and masks), so a 1024-cell extraction never
+#: allocates the 4 GB a dense grid would need.
+CHUNK_CELLS = 256
+
+
 def extract_mesh(
     field,
     lo,
@@ -196,43 +202,92 @@ def extract_mesh(
 
     lo, hi : (3,) corners of a box that contains the surface (unit-box coordinates)
     resolution : fine cells along the longest side of the box
-    stats : optional dict receiving "evaluations", "dense_nodes", "seconds"
+    stats : optional dict receiving "evaluations", "dense_nodes", "seconds", "chunks"
+    Grids larger than CHUNK_CELLS per side are meshed chunk by chunk; vertices on the planes
+    between chunks are merged by the grid edge they lie on, so the result is one closed mesh.
     """
-    from skimage.measure import marching_cubes
-
     t0 = time.perf_counter()
     origin, cell, cells = grid_layout(lo, hi, resolution)
-    grid, visit, evaluations = narrow_band_values(field, origin, cell, cells, progress, should_stop)
+    starts = [np.arange(0, int(c), CHUNK_CELLS) for c in cells]
+    chunks = [(i, j, k) for i in starts[0] for j in starts[1] for k in starts[2]]
+    verts_all, faces_all, keys_all = [], [], []
+    evaluations, lowest, highest, count = 0, np.inf, -np.inf, 0
+    for n, start in enumerate(chunks):
+        start = np.array(start)
+        size = np.minimum(cells - start, CHUNK_CELLS)
+        fraction = lambda stage, f, info, n=n: progress(stage, (n + f) / len(chunks), info)  # noqa: E731
+        v, f, evals, grid_lo, grid_hi = _mesh_chunk(field, origin, cell, cells, start, size, fraction, should_stop)
+        evaluations += evals
+        lowest, highest = min(lowest, grid_lo), max(highest, grid_hi)
+        if len(f):
+            keys_all.append(_edge_keys(v + start, cells))
+            verts_all.append(v)
+            faces_all.append(f + count)
+            count += len(v)
+            verts_all[-1] = v * cell + origin + start * cell
+    if not (lowest < 0 < highest) or not faces_all:
+        raise_empty(np.array([lowest, highest]))
+    verts = np.concatenate(verts_all)
+    faces = np.concatenate(faces_all)
+    if len(chunks) > 1:
+        keys = np.concatenate(keys_all)
+        uniq, first, inverse = np.unique(keys, return_index=True, return_inverse=True)
+        verts, faces = verts[first], inverse[faces]
+    faces = faces.astype(np.int64)
+    if measures.signed_volume(verts, faces) < 0:
+        faces = faces[:, ::-1]
+    if stats is not None:
+        stats.update(evaluations=evaluations, dense_nodes=int(np.prod(cells + 1)), seconds=time.perf_counter() - t0,
+                     chunks=len(chunks))
+    progress("extract", 1.0, {"faces": len(faces)})
+    return TriangleMesh(np.ascontiguousarray(verts, dtype=np.float64), np.ascontiguousarray(faces))
+
+
+def _mesh_chunk(field, origin, cell, cells, start, size, progress, should_stop):
+    """Marching cubes on one chunk: (vertices in chunk cell units, faces, evaluations, min, max)."""
+    from skimage.measure import marching_cubes
+
+    grid, visit, evaluations = narrow_band_values(field, origin + start * cell, cell, size, progress, should_stop)
     # Close the surface at the box walls. Marching cubes visits only cells with a corner in
     # `visit` (scikit-image tests the cell's highest corner, measured): the evaluated nodes
     # (every cell the surface passes has all corners evaluated) and the two layers at each wall.
     for axis in range(3):
-        walls = [slice(None)] * 3
-        walls[axis] = [0, -1]
-        grid[tuple(walls)] = np.maximum(grid[tuple(walls)], cell)
-        walls[axis] = [0, 1, -2, -1]
-        visit[tuple(walls)] = True
-    if not (grid.min() < 0 < grid.max()):
-        raise_empty(grid)
+        for end, layers in ((0, [0, 1]), (-1, [-2, -1])):
+            at_wall = start[axis] == 0 if end == 0 else start[axis] + size[axis] == cells[axis]
+            if not at_wall:
+                continue
+            walls = [slice(None)] * 3
+            walls[axis] = end
+            grid[tuple(walls)] = np.maximum(grid[tuple(walls)], cell)
+            walls[axis] = layers
+            visit[tuple(walls)] = True
+    low, high = float(grid.min()), float(grid.max())
+    if not (low < 0 < high):
+        return np.zeros((0, 3)), np.zeros((0, 3), np.int64), evaluations, low, high
     # no node value lies within OFF_ZERO cells of zero, so no triangle is degenerate and
     # scikit-image's slower clean-up is needed only if that ever fails
-    verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=True, mask=visit)
+    verts, faces, _, _ = marching_cubes(grid, level=0.0, allow_degenerate=True, mask=visit)
     if measures.has_degenerate_faces(verts, faces):
-        verts, faces, _, _ = marching_cubes(grid, level=0.0, spacing=(cell, cell, cell), allow_degenerate=False, mask=visit)
-    verts = verts.astype(np.float64) + origin
-    faces = faces.astype(np.int64)
-    if measures.signed_volume(verts, faces) < 0:
-        faces = faces[:, ::-1].copy()
-    if stats is not None:
-        stats.update(evaluations=evaluations, dense_nodes=int(np.prod(cells + 1)), seconds=time.perf_counter() - t0)
-    progress("extract", 1.0, {"faces": len(faces)})
-    return TriangleMesh(verts, np.ascontiguousarray(faces))
+        verts, faces, _, _ = marching_cubes(grid, level=0.0, allow_degenerate=False, mask=visit)
+    return verts.astype(np.float64), faces.astype(np.int64), evaluations, low, high
+
+
+def _edge_keys(g: np.ndarray, cells) -> np.ndarray:
+    """(n,) int64 id of the grid edge each marching-cubes vertex (n, 3) lies on, in global cell
+    units: two coordinates are whole numbers, the third lies strictly between two."""
+    rounded = np.round(g)
+    along = np.argmax(np.abs(g - rounded), axis=1)
+    base = rounded.astype(np.int64)
+    rows = np.arange(len(g))
+    base[rows, along] = np.floor(g[rows, along]).astype(np.int64)
+    n = np.asarray(cells, dtype=np.int64) + 1
+    return ((base[:, 0] * n[1] + base[:, 1]) * n[2] + base[:, 2]) * 3 + along
 
 
 def raise_empty(grid: np.ndarray):
     from ..errors import SolverFailure
 
-    where = "entirely outside" if grid.min() >= 0 else "entirely inside"
+    where = "entirely outside" if np.min(grid) >= 0 else "entirely inside"
     raise SolverFailure(f"the field has no surface in the extraction box (the box is {where} the shape): the edit collapsed or moved the shape away; try a gentler setting")
 
 

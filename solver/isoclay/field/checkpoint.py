@@ -11,12 +11,17 @@ from ..errors import InvalidInput
 from . import analytic
 from .base import SDFField
 from .mlp import MLPSDF
+from .sparse import SparseSplineSDF
 from .spline import SplineSDF
 
-FORMAT_VERSION = 1
+#: 2: sparse fields (kind "sparse_spline": a coarse dense spline plus fine blocks). Version 1
+#: files hold only kinds this version still builds the same way, so they load unchanged.
+FORMAT_VERSION = 2
+READABLE_VERSIONS = (1, 2)
 
 #: kind -> class; modules defining new field kinds (e.g. warped fields) call register_field_kind.
-FIELD_KINDS: dict[str, type] = {SplineSDF.kind: SplineSDF, MLPSDF.kind: MLPSDF, **analytic.ANALYTIC_KINDS}
+FIELD_KINDS: dict[str, type] = {SplineSDF.kind: SplineSDF, SparseSplineSDF.kind: SparseSplineSDF, MLPSDF.kind: MLPSDF,
+                                **analytic.ANALYTIC_KINDS}
 
 
 def _register_warped() -> None:
@@ -76,6 +81,9 @@ def load_field(path: str | os.PathLike) -> tuple[SDFField, dict]:
     except Exception as exc:
         raise InvalidInput(f"{path.name} is not an isoclay field checkpoint ({type(exc).__name__}): refit with `isoclay fit`") from None
     version = payload.get("format_version") if isinstance(payload, dict) else None
-    if version != FORMAT_VERSION:
-        raise InvalidInput(f"{path.name} has checkpoint format {version!r}, this isoclay reads {FORMAT_VERSION}: refit with `isoclay fit`")
+    if version not in READABLE_VERSIONS:
+        newer = isinstance(version, int) and version > FORMAT_VERSION
+        why = "written by a newer isoclay: update isoclay" if newer else "refit with `isoclay fit`"
+        raise InvalidInput(f"{path.name} has checkpoint format {version!r}, this isoclay reads formats "
+                           f"{', '.join(map(str, READABLE_VERSIONS))}: {why}")
     return field_from_dict(payload["field"]), payload.get("extra", {})

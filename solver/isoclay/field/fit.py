@@ -1,16 +1,18 @@
 """Fit a field to a mesh: exact distances at spline nodes near the surface, optional Adam refinement.
 
 Stages (each reported through ``progress``):
-1. ``distance``: exact signed distances (libigl, winding-number sign) at the grid nodes, coarse
-   to fine: every node of a coarse grid, then on each finer grid only the nodes whose
-   interpolated estimate lies in a narrow band around the surface. Far nodes keep the
-   interpolated estimate, whose sign is right, so the field has no floaters.
-2. the node values become spline coefficients through a smoothed second-order
-   quasi-interpolant (spline.spline_from_distances): C2, surface offset ~5e-5 unit-box
-   lengths, curvature free of the facet noise that exact interpolation reproduces.
-3. ``refine`` (optional, ``steps`` > 0): Adam on the coefficients with surface samples (f = 0, grad f = normal),
-   exact near-surface samples and an eikonal term (Gropp et al. 2020, "Implicit geometric
-   regularization for learning shapes"), which sharpens the zero level set between nodes.
+1. ``distance``: a coarse dense grid (``coarse_resolution`` cells) gets exact distances in a band
+   around the surface, scattered from the triangles (distances.py), signed by winding numbers;
+   far nodes an upper bound with the right sign (node_values.py). Its values become a cubic
+   B-spline through a smoothed second-order quasi-interpolant (spline.spline_from_distances).
+2. ``detail``: where that coarse field misses the input's own vertices by more than
+   ``refine_tolerance`` fine cells (curvature, thin parts, detail), blocks of a fine grid of
+   ``resolution`` cells get exact distances too, and the fine spline of the residual is stored
+   in those blocks only (sparse.SparseSplineSDF). At ``resolution`` <= ``coarse_resolution`` the
+   dense grid alone is the field (faster for small cases).
+3. ``refine`` (optional, ``steps`` > 0): Adam on the coefficients with surface samples (f = 0,
+   grad f = normal), exact near-surface samples and an eikonal term (Gropp et al. 2020,
+   "Implicit geometric regularization for learning shapes").
 Fields of kind "mlp" (the reference) skip 1-2 and train from samples alone.
 """
 
@@ -20,7 +22,6 @@ import time
 from dataclasses import asdict, dataclass
 
 import numpy as np
-import scipy.ndimage
 import torch
 
 from ..errors import InvalidInput
@@ -28,8 +29,13 @@ from ..mesh.types import TriangleMesh
 from ..callbacks import check_stop, never_stop, no_progress
 from .base import SDFField
 from .mlp import MLPSDF
+from .node_values import buried_vertices, coarse_node_values, fine_node_values, refined_blocks
+from .distances import BLOCK
+from .sparse import SparseSplineSDF, smoothed_coefficients
 from .spline import DEFAULT_HALF_EXTENT, spline_from_distances
 from .supervision import SignedDistance, sample_surface
+from .winding import WindingNumbers
+from ..mesh.measures import face_areas
 
 
 @dataclass(frozen=True)
@@ -37,8 +43,20 @@ class FitConfig:
     """Settings of a field fit. Part of the field cache key and stored in checkpoints."""
 
     architecture: str = "spline"  # "spline" (default, fast on CPUs) or "mlp" (reference)
-    resolution: int = 128  # spline cells per axis over [-0.65, 0.65]^3: ~1/100 of the object
-    band: float = 2.0  # exact distances for nodes within this many fine cells of the surface
+    # finest spline cells per axis over [-0.65, 0.65]^3 (1/790 of the object's longest side at
+    # 1024): a fin 1/500 of the object thick still has a node inside it. Only refined blocks
+    # pay for it (measured on the 45k-vertex anvil block: see docs/benchmark.md, remesh).
+    resolution: int = 1024
+    # the dense grid under the fine blocks: 128 cells (2.2M nodes, 9 MB) give every far node a
+    # right sign and distance bound in about a second; resolution <= this is a dense-only field
+    coarse_resolution: int = 128
+    # exact distances for nodes within this many cells of the surface: the quasi-interpolant
+    # reads one node beyond the 4x4x4 spline support of a point within a cell of the surface
+    band: float = 4.0
+    # refine where the coarse field misses the input's surface by more than this many cells of
+    # ``resolution`` (0.25 at 1024: 3.2e-4 of the longest side; the demo anvil's mean distance to
+    # its input 1.8e-5 -> 1.35e-5 diag-units with 0.1, at twice the fine blocks; measured)
+    refine_tolerance: float = 0.25
     # Adam refinement steps after the spline interpolates exact distances. Measured on the
     # 45k-vertex anvil block: 0 steps gave Chamfer 2.9e-5 / Hausdorff 1.8e-3 diag in 2.2 s,
     # 40 steps 3.1e-5 / 2.1e-3 in 2.6 s: no gain, so off by default for splines. The MLP
@@ -63,6 +81,10 @@ class FitConfig:
         # below half a cell the band misses nodes whose trilinear estimate is off; 8 cells already
         # queries about four times the nodes of the default 2 for the same surface
         bounds.number("fit band", self.band, 0.5, 8.0, "cells")
+        # the dense grid under the fine blocks: coarser loses far signs, finer than the finest is pointless
+        bounds.whole_number("fit coarse_resolution", self.coarse_resolution, 16, min(512, max(16, self.resolution)), "cells")
+        # refinement tolerance in finest cells: below 0.05 nearly every block is refined; past 4 none is
+        bounds.number("fit refine_tolerance", self.refine_tolerance, 0.05, 4.0, "cells")
         # 100,000 Adam steps at 65-130 ms each (FACTS, one thread) are 2-4 hours, past the 1 h job limit
         bounds.whole_number("fit steps", self.steps, 0, 100_000)
         # a coefficient step of 0.1 unit-box lengths is a tenth of the object: Adam diverges (default 2e-4)
@@ -90,50 +112,129 @@ class FittedField:
     config: FitConfig
     metrics: dict
     seconds: dict
+    # parts the field cannot hold (thin.thin_parts): [{"part", "center" (unit box), "share"}]
+    thin: tuple = ()
 
 
-def _node_grid(positions: np.ndarray) -> np.ndarray:
-    x, y, z = np.meshgrid(positions, positions, positions, indexing="ij")
-    return np.stack([x, y, z], axis=-1)
+#: Exact distances on the coarse grid within this many of its cells (beyond: an upper bound);
+#: the fine blocks, where detail is, use FitConfig.band.
+COARSE_BAND = 3.0
+#: Surface samples (beside the vertices) that decide where to refine: four per fine block of
+#: surface, at most this many (2M: about a second of coarse-field queries).
+SURFACE_SAMPLES_MAX = 2_000_000
 
 
-def _upsample(coarse: np.ndarray, coarse_pos: np.ndarray, fine_pos: np.ndarray) -> np.ndarray:
-    """Trilinear interpolation of a grid of values onto a finer grid (positions per axis)."""
-    idx = (fine_pos - coarse_pos[0]) / (coarse_pos[1] - coarse_pos[0])
-    ii, jj, kk = np.meshgrid(idx, idx, idx, indexing="ij")
-    return scipy.ndimage.map_coordinates(coarse, [ii, jj, kk], order=1, mode="nearest")
+#: Surface samples for the thin-part check of a dense-only field.
+THIN_SAMPLES = 20_000
 
 
-def node_distances(mesh: TriangleMesh, resolution: int, band: float, progress=no_progress, should_stop=never_stop):
-    """Signed distances at the (R+3)^3 spline nodes, exact near the surface.
+def _thin(field, points, normals, parts, cell) -> list:
+    from .thin import thin_parts
 
-    Returns (values (R+3, R+3, R+3) float64, number of exact queries).
-    """
-    distance = SignedDistance(mesh)
-    levels = [resolution]
-    while levels[-1] > 24:
-        levels.append(levels[-1] // 2)
-    levels = levels[::-1]
-    values = pos = None
-    queries = 0
-    for i, res in enumerate(levels):
-        check_stop(should_stop, "distance")
-        cell = 2 * DEFAULT_HALF_EXTENT / res
-        new_pos = -DEFAULT_HALF_EXTENT + cell * (np.arange(res + 3) - 1.0)
-        nodes = _node_grid(new_pos)
-        if values is None:
-            new = distance(nodes.reshape(-1, 3)).reshape(nodes.shape[:3])
-            queries += new.size
-        else:
-            new = _upsample(values, pos, new_pos)
-            coarse_cell = pos[1] - pos[0]
-            # trilinear estimates of a distance are off by at most about half a coarse cell
-            near = np.abs(new) < band * cell * np.sqrt(3) + 0.5 * coarse_cell * np.sqrt(3)
-            new[near] = distance(nodes[near])
-            queries += int(near.sum())
-        values, pos = new, new_pos
-        progress("distance", (i + 1) / len(levels), {"grid": res, "queries": queries})
-    return values, queries
+    return thin_parts(field, points, normals, parts, cell)
+
+
+#: The fine grid's cell is at most this fraction of the input's median edge: detail finer than its
+#: own edges a mesh cannot carry (a 35k-vertex scan: edges 6.8e-3 -> 384 cells instead of 1024,
+#: nine times fewer fine nodes; Chamfer to the scan unchanged at 256-cell output, measured).
+EDGE_CELLS = 2.0
+#: Parts count as thin for the coarse field when, a quarter and three quarters of its cell inside
+#: their surface, the coarse field is not negative (then the fine grid goes to
+#: FitConfig.resolution whatever the edges; a noisy 35k-vertex scan: 0.05% of its surface, a fin
+#: 1/500 thick on a plate: 7%, measured).
+THIN_PROBE = 0.25
+
+
+def fine_resolution(mesh: TriangleMesh, coarse, config: FitConfig, rng) -> int:
+    """Cells of the fine grid: enough for the input's own edge lengths (EDGE_CELLS cells a median
+    edge), all of ``config.resolution`` where the coarse field misses thin parts; a multiple of
+    the coarse grid's cells."""
+    from .thin import REPORT_SHARE, not_held
+
+    v, f = mesh.vertices, mesh.faces
+    edges = np.linalg.norm(v[f[:, [1, 2, 0]]] - v[f], axis=2).reshape(-1)
+    median = float(np.median(edges[edges > 0])) if (edges > 0).any() else 1.0
+    wanted = EDGE_CELLS * 2 * DEFAULT_HALF_EXTENT / median
+    coarse_res = coarse.resolution
+    points, normals = sample_surface(mesh, THIN_SAMPLES, rng)
+    # not held a quarter cell in nor three quarters in: nothing solid there (a scanner's outlier,
+    # which only pokes out, is held farther in)
+    thin = not_held(coarse, points, normals, THIN_PROBE * coarse.cell) & not_held(coarse, points, normals, 3 * THIN_PROBE * coarse.cell)
+    if thin.mean() > REPORT_SHARE:
+        wanted = config.resolution
+    steps = int(np.ceil(min(wanted, config.resolution) / coarse_res))
+    return max(1, min(steps, config.resolution // coarse_res)) * coarse_res
+
+
+def mesh_parts(faces: np.ndarray) -> tuple[bool, np.ndarray]:
+    """(several sheets: the mesh has open rims, non-manifold edges or several parts; (m,) part label
+    of each face)."""
+    from ..mesh.measures import edge_face_counts, face_components
+
+    _, counts, _ = edge_face_counts(faces)
+    count, labels = face_components(int(faces.max()) + 1, faces)
+    return bool((counts != 2).any() or count > 1), labels
+
+
+def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, should_stop=never_stop,
+                 rng: np.random.Generator | None = None):
+    """The spline field of a validated unit-box mesh: (SplineSDF or SparseSplineSDF, metrics)."""
+    v = np.ascontiguousarray(mesh.vertices, dtype=np.float64)
+    f = np.ascontiguousarray(mesh.faces, dtype=np.int64)
+    coarse_res = min(config.resolution, config.coarse_resolution)
+    coarse_cell = 2 * DEFAULT_HALF_EXTENT / coarse_res
+    winding = WindingNumbers(v, f, proxy_size=0.5 * coarse_cell)
+    several, parts = mesh_parts(f)
+    values, exact = coarse_node_values(v, f, coarse_res, DEFAULT_HALF_EXTENT, COARSE_BAND, winding,
+                                       several, progress, should_stop)
+    coarse = spline_from_distances(values)
+    del values
+    metrics = {"exact_queries": float(exact), "coarse_resolution": float(coarse_res), "fine_blocks": 0.0,
+               "refined_fraction": 0.0}
+    if config.resolution <= coarse_res:
+        metrics["winding_queries"] = float(winding.queries)
+        rng = rng if rng is not None else np.random.default_rng(config.seed)
+        points, normals, faces_of = sample_surface(mesh, THIN_SAMPLES, rng, with_faces=True)
+        metrics["thin"] = _thin(coarse, points, normals, parts[faces_of], coarse_cell)
+        return coarse, metrics
+    check_stop(should_stop, "detail")
+    rng = rng if rng is not None else np.random.default_rng(config.seed)
+    resolution = fine_resolution(mesh, coarse, config, rng)
+    metrics["fine_resolution"] = float(resolution)
+    if resolution <= coarse_res:
+        points, normals, faces_of = sample_surface(mesh, THIN_SAMPLES, rng, with_faces=True)
+        metrics["thin"] = _thin(coarse, points, normals, parts[faces_of], coarse_cell)
+        metrics["winding_queries"] = float(winding.queries)
+        return coarse, metrics
+    h = 2 * DEFAULT_HALF_EXTENT / resolution
+    tolerance = config.refine_tolerance * 2 * DEFAULT_HALF_EXTENT / config.resolution  # of the finest cell asked for
+    # the coarse field's miss at the input's vertices and at surface samples a few per fine block
+    area = float(face_areas(v, f).sum())
+    samples, sample_normals, sample_faces = sample_surface(mesh, int(min(SURFACE_SAMPLES_MAX, 4 * area / (BLOCK * h) ** 2)),
+                                                           rng, with_faces=True)
+    points = np.concatenate([v, samples])
+    error = np.abs(coarse.fast_values(points)).astype(np.float64)
+    buried = buried_vertices(v, f, error[: len(v)] > max(coarse_cell, tolerance), 2 * h, winding)
+    error[: len(v)][buried] = 0.0
+    allowed = refined_blocks(coarse, points, error, h, tolerance, resolution + 3)
+    metrics["refined_fraction"] = float((error > tolerance).mean())
+    metrics["winding_queries"] = float(winding.queries)
+    progress("detail", 0.2, {"grid": resolution, "blocks": int(allowed.sum())})
+    if not allowed.any():
+        metrics["thin"] = _thin(coarse, samples, sample_normals, parts[sample_faces], coarse_cell)
+        return coarse, metrics
+    band, residual = fine_node_values(v, f, coarse, resolution, config.band, allowed, winding, parts)
+    check_stop(should_stop, "detail")
+    progress("detail", 0.7, {"grid": resolution, "blocks": len(band.blocks)})
+    coefficients = smoothed_coefficients(residual, band.table, band.blocks)
+    metrics["exact_queries"] += float(np.isfinite(band.distance).sum())
+    metrics["fine_blocks"] = float(len(band.blocks))
+    field = SparseSplineSDF(resolution, DEFAULT_HALF_EXTENT, coarse_res, band.blocks, torch.from_numpy(coefficients.astype(np.float32)), coarse)
+    metrics["winding_queries"] = float(winding.queries)
+    metrics["field_megabytes"] = field.nbytes() / 1e6
+    metrics["thin"] = _thin(field, samples, sample_normals, parts[sample_faces], h)
+    progress("detail", 1.0, {"grid": resolution, "blocks": len(band.blocks)})
+    return field, metrics
 
 
 def fit_field(
@@ -150,10 +251,9 @@ def fit_field(
     seconds = {}
     t0 = time.perf_counter()
     if config.architecture == "spline":
-        values, queries = node_distances(mesh, config.resolution, config.band, progress, should_stop)
-        field = spline_from_distances(values)
+        field, metrics = spline_field(mesh, config, progress, should_stop, rng)
     else:
-        field, queries = MLPSDF(), 0
+        field, metrics = MLPSDF(), {"exact_queries": 0.0}
     seconds["distance"] = time.perf_counter() - t0
 
     t1 = time.perf_counter()
@@ -162,7 +262,8 @@ def fit_field(
     seconds["refine"] = time.perf_counter() - t1
     seconds["total"] = time.perf_counter() - t0
     progress("fit", 1.0, {"seconds": seconds["total"]})
-    return FittedField(field, config, {"exact_queries": float(queries)}, seconds)
+    thin = tuple(metrics.pop("thin", ()))
+    return FittedField(field, config, metrics, seconds, thin)
 
 
 def _refine(field: SDFField, mesh: TriangleMesh, config: FitConfig, rng, progress, should_stop) -> None:

