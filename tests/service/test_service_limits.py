@@ -98,7 +98,8 @@ def test_serve_options_outside_their_range_are_refused_with_one_line(tmp_path):
     ("remesh", {"target_faces": 10**15, "fit": {"resolution": 16}}, "target_faces 1e+15 is out of range"),
     ("remesh", {"fit": {"steps": 10**9, "resolution": 16}}, "fit steps 1e+09 is out of range"),
     ("remesh", {"fit": {"near_samples": 10**12, "resolution": 16}}, "fit near_samples 1e+12 is out of range"),
-    ("remesh", {"fit": {"resolution": 10**7}}, "memory"),
+    ("remesh", {"fit": {"resolution": 10**7}}, "fit resolution 10,000,000 is out of range"),
+    ("remesh", {"fit": {"resolution": 1024}}, "memory"),  # valid, but the fine grid's worst case is past 2 GiB
     ("remesh", {"fit": {"colour": 1}}, "unknown fit setting"),
     ("smooth", {"strength": -1.0}, "strength"),  # the task's own Config.from_params, run at submit
     ("deform", {"stiffness": "firm"}, "handle"),

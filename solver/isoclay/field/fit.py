@@ -81,8 +81,9 @@ class FitConfig:
         # below half a cell the band misses nodes whose trilinear estimate is off; 8 cells already
         # queries about four times the nodes of the default 2 for the same surface
         bounds.number("fit band", self.band, 0.5, 8.0, "cells")
-        # the dense grid under the fine blocks: coarser loses far signs, finer than the finest is pointless
-        bounds.whole_number("fit coarse_resolution", self.coarse_resolution, 16, min(512, max(16, self.resolution)), "cells")
+        # the dense grid under the fine blocks (a resolution at or below it is a dense-only field):
+        # coarser than 16 loses far signs; 512 is already 1 GB of dense float32 coefficients
+        bounds.whole_number("fit coarse_resolution", self.coarse_resolution, 16, 512, "cells")
         # refinement tolerance in finest cells: below 0.05 nearly every block is refined; past 4 none is
         bounds.number("fit refine_tolerance", self.refine_tolerance, 0.05, 4.0, "cells")
         # 100,000 Adam steps at 65-130 ms each (FACTS, one thread) are 2-4 hours, past the 1 h job limit

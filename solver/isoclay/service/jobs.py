@@ -191,6 +191,10 @@ class JobManager:
             n_v, n_f, center, scale = self._mesh_facts(base_row.result_blob)
         else:
             raise ServiceError("invalid_input", "submit needs a mesh or a parent_node to start from")
+        if task != "echo":  # the task's own refusal first: it names the setting, the estimate only its cost
+            verdict = self.checker.check(task, handle_groups.with_points(params, frames), center, scale)
+            if verdict is not None:
+                raise ServiceError(*verdict)
         need = estimate_memory(task, n_v, n_f, params)
         if need > self.limits.memory_bytes:
             allowed = shown_bytes(self.limits.memory_bytes)
@@ -198,10 +202,6 @@ class JobManager:
                 f"about {shown_bytes(need)}, more than the {allowed}"
             raise ServiceError("invalid_input", f"this job needs {amount} the solver allows: decimate the mesh, "
                                                 "lower params.fit.resolution, or raise --memory-limit")
-        if task != "echo":
-            verdict = self.checker.check(task, handle_groups.with_points(params, frames), center, scale)
-            if verdict is not None:
-                raise ServiceError(*verdict)
         self.data.require_room(24 * (n_v + n_f) if upload and self.store.mesh_blob(mesh_hash) is None else 0)
         if upload:
             self._store_mesh(v, f, mesh_hash)
