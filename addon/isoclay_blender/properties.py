@@ -117,8 +117,9 @@ class IsoclaySceneSettings(bpy.types.PropertyGroup):
         name="Roundness", description="Radius of the rounding to undo (at most a fifth of the object's longest side)",
         default=0.01, min=1e-6, soft_max=1.0, subtype='DISTANCE', unit='LENGTH', precision=4)
     field_resolution: IntProperty(
-        name="Field detail", description="Cells per axis of the fitted field: more keeps finer detail and takes longer",
-        default=128, min=FIELD_DETAIL_RANGE[0], max=FIELD_DETAIL_RANGE[1])
+        name="Field detail", description="Finest cells along the object's longest side of the fitted field (fine cells "
+        "only near the surface, where the shape needs them): more keeps finer detail and takes longer",
+        default=1024, min=FIELD_DETAIL_RANGE[0], max=FIELD_DETAIL_RANGE[1])
     surface_auto: BoolProperty(
         name="Auto surface detail", description="Let the solver size a rebuilt surface from the object's own edges",
         default=True)
