@@ -70,12 +70,12 @@ def prepare_mesh(mesh: TriangleMesh, name: str = "mesh") -> Prepared:
 @dataclass(frozen=True)
 class EditOutcome:
     """mesh : result in world units (vertex_values carried); field : the field the edit started
-    from; result_field : the edited field or None; report : JSON-ready summary;
+    from (None for a task that needs none, decimate); result_field : the edited field or None; report : JSON-ready summary.
     correspondence : for each result vertex its source point on the input mesh as given
     (face index into mesh.faces as sent, barycentric weights), see source_correspondence."""
 
     mesh: TriangleMesh
-    field: SDFField
+    field: SDFField | None
     result_field: SDFField | None
     normalization: Normalization
     mesh_hash: str
@@ -121,7 +121,7 @@ def run_edit(
     fit_config = fit_config or FitConfig(seed=seed)
     seconds: dict = {"prepare": time.perf_counter() - t0}
     warnings = tuple(prepared.check.warnings)
-    if field is None:
+    if field is None and getattr(module, "NEEDS_FIELD", True):
         fitted = fit_field(prepared.unit, fit_config, progress, should_stop, np.random.default_rng(seed))
         field = fitted.field
         seconds["fit"] = fitted.seconds["total"]

@@ -205,9 +205,10 @@ def run_job(spec: dict, channel: _Channel) -> dict:
     tmp = tmp_dir / f"{os.getpid()}-field.pt"
     field_blob = result_field_blob = None
     try:
-        save_field(tmp, outcome.field, {"fit_key": outcome.fit_key, "task": spec["task"]})
-        field_blob = blobs.put_file(tmp)
-        if field is None:  # freshly fitted: keep it for the next edit of the same mesh and settings
+        if outcome.field is not None:  # (a task that needs no field, decimate, fits none)
+            save_field(tmp, outcome.field, {"fit_key": outcome.fit_key, "task": spec["task"]})
+            field_blob = blobs.put_file(tmp)
+        if field is None and outcome.field is not None:  # freshly fitted: keep it for the next edit of the same mesh and settings
             cache_tmp = tmp_dir / f"{os.getpid()}-cache.pt"
             save_field(cache_tmp, outcome.field, {"cache_key": outcome.fit_key})
             cache.adopt(outcome.fit_key, cache_tmp)

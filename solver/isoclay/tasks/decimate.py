@@ -1,7 +1,8 @@
 """Decimate: bring a mesh to a face budget with quadric-error edge collapses (extract.decimate, libigl).
 
-The field is not read: the mesh is reduced as it is and the field passes through unchanged (the
-fewer faces approximate the same surface), so a step after this one may still start from it.
+The field is not read and, when none is given, not fitted (NEEDS_FIELD): the mesh is reduced as it
+is and a given field passes through unchanged (the fewer faces approximate the same surface), so a
+step after this one may still start from it.
 Usually the last step of a clean-up chain: remesh, smooth, then decimate to the budget.
 """
 
@@ -16,6 +17,8 @@ from ..mesh import measures
 from ..mesh.types import TriangleMesh
 from .base import TaskResult, check_param_names, check_stop
 
+#: The mesh is reduced as it is: no field is fitted for this task (pipeline.run_edit reads this).
+NEEDS_FIELD = False
 #: Fewest faces accepted: a closed surface needs at least a tetrahedron's four.
 MIN_FACES = 4
 #: Most faces accepted as a budget (the validator's limit on any mesh, mesh.validate.MAX_ELEMENTS).
