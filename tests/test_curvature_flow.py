@@ -37,7 +37,7 @@ def _sphere_radii(field, guess):
 def test_node_values_round_trip_through_spline():
     # B-spline interpolation (Unser 1999): node values -> coefficients -> node values is the identity
     grid = node_grid_of(SphereSDF(0.3), 24)
-    again = node_grid_of(spline_of(grid))
+    again = node_grid_of(spline_of(grid), grid.resolution, grid.half_extent)
     np.testing.assert_allclose(again.values, grid.values, atol=2e-6)  # float32 coefficients
 
 

@@ -74,32 +74,42 @@ class NodeGrid:
 
 
 def node_grid_of(field, resolution: int = 128, half_extent: float | None = None) -> NodeGrid:
-    """Node values of any SDFField on a SplineSDF grid.
+    """Node values of any SDFField on a grid of `resolution` cells spanning [-half_extent, half_extent]^3.
 
-    A SplineSDF gives its exact node values from its coefficients (B-spline at integer
-    offsets: (c[k-1] + 4 c[k] + c[k+1]) / 6 per axis, mirror at the ends, the inverse of
-    spline_from_node_values); any other field is sampled at the nodes of a grid with the
-    given resolution.
+    half_extent : unit-box length, default the spline grid's DEFAULT_HALF_EXTENT (0.65)
+    A SplineSDF with the same resolution and extent gives its exact node values from its
+    coefficients (B-spline at integer offsets: (c[k-1] + 4 c[k] + c[k+1]) / 6 per axis, mirror
+    at the ends, the inverse of spline_from_node_values); any other field (or grid) is sampled
+    at the nodes, value-only (geometry.values uses a field's fast_values when it has one).
+    Smooth and sharpen choose their own working resolution and read fields only through here.
     """
     from ..field.spline import DEFAULT_HALF_EXTENT, SplineSDF
 
-    if isinstance(field, SplineSDF):
+    e = DEFAULT_HALF_EXTENT if half_extent is None else float(half_extent)
+    if isinstance(field, SplineSDF) and field.resolution == resolution and abs(field.half_extent - e) < 1e-12:
         c = field.coefficients.detach().double().cpu().numpy()
         for axis in range(3):
             c = _node_stencil(c, axis)
         return NodeGrid(c, field.half_extent)
     from ..geometry import values
 
-    e = DEFAULT_HALF_EXTENT if half_extent is None else float(half_extent)
     grid = NodeGrid(np.zeros((resolution + 3,) * 3), e)
     a = grid.axis()
     out = np.empty(grid.values.shape)
-    for i in range(grid.side):  # one slab at a time bounds memory for large grids
-        yz = np.stack(np.meshgrid(a, a, indexing="ij"), axis=-1).reshape(-1, 2)
-        pts = np.column_stack([np.full(len(yz), a[i]), yz])
-        out[i] = values(field, pts).reshape(grid.side, grid.side)
+    yz = np.stack(np.meshgrid(a, a, indexing="ij"), axis=-1).reshape(-1, 2)
+    slabs = max(1, 2_000_000 // len(yz))  # a few slabs per query bounds memory for large grids
+    for i in range(0, grid.side, slabs):
+        xs = a[i : i + slabs]
+        pts = np.column_stack([np.repeat(xs, len(yz)), np.tile(yz, (len(xs), 1))])
+        out[i : i + len(xs)] = values(field, pts).reshape(len(xs), grid.side, grid.side)
     grid.values = out
     return grid
+
+
+def unit_box_grid(field, resolution: int, margin_cells: float = 8.0) -> NodeGrid:
+    """node_grid_of over the unit box [-0.5, 0.5]^3 plus margin_cells cells each side (the room
+    the bands, stencils and blurs of a flow or a sharpening need), `resolution` cells across."""
+    return node_grid_of(field, resolution, 0.5 / (1.0 - 2.0 * margin_cells / resolution))
 
 
 def _node_stencil(c: np.ndarray, axis: int) -> np.ndarray:
