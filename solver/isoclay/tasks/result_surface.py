@@ -67,6 +67,11 @@ def positive_length(task: str, name: str, value, meaning: str) -> float:
     return float(value)
 
 
+def shown(value: float) -> str:
+    """A length as the artist typed it, or "given" when echoing it back would be absurd."""
+    return f"{value:.4g}" if abs(value) < 1e9 else "given"
+
+
 @dataclass(frozen=True)
 class SurfaceOptions:
     """keep_topology : project the input's vertices instead of remeshing
@@ -131,7 +136,7 @@ def surface_of(new_field, mesh: TriangleMesh, options: SurfaceOptions, progress,
         if options.resolution is None and out.n_faces > DECIMATE_ABOVE * wanted:
             t3 = time.perf_counter()
             check_stop(should_stop, "decimate")
-            out = decimate(out, wanted)
+            out = decimate(out, wanted, quadric=True)
             seconds["decimate"] = time.perf_counter() - t3
         if not options.closed:
             t4 = time.perf_counter()

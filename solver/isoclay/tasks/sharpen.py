@@ -12,6 +12,7 @@ from ..errors import InvalidInput
 from ..mesh.types import TriangleMesh
 from .base import TaskResult, check_param_names, check_stop, is_finite_number
 from .result_surface import SurfaceOptions, optional_resolution, positive_length, require_bool, surface_of
+from .result_surface import shown as _shown
 
 #: Largest roundness to undo, as a fraction of the object's longest side: a rounding must leave
 #: flat sides to extend (energies.crease_sharpen.MAX_RADIUS_REL of the shortest extent is what
@@ -65,7 +66,7 @@ class Config:
             if radius > MAX_RADIUS:
                 size = normalization.length_from_unit(1.0) if normalization is not None else 1.0
                 raise InvalidInput(
-                    f"sharpen: radius {r:.4g} is too large for an object {size:.4g} long (at most {MAX_RADIUS * size:.4g}): "
+                    f"sharpen: radius {_shown(r)} is too large for an object {size:.4g} long (at most {MAX_RADIUS * size:.4g}): "
                     "give the radius of the roundings to undo, or leave it out to detect them"
                 )
         return cls(

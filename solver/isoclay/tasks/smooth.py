@@ -32,6 +32,7 @@ from .result_surface import (  # noqa: F401 (project_vertices, MAX_PROJECTION_MO
     require_bool,
     surface_of,
 )
+from .result_surface import shown as _shown
 
 #: Largest strength accepted, as a fraction of the object's longest side: beyond it the whole
 #: object is a "bump" and smoothing would melt it.
@@ -107,7 +108,7 @@ class Config:
         if unit > MAX_STRENGTH_REL:
             size = normalization.length_from_unit(1.0) if normalization is not None else 1.0
             raise InvalidInput(
-                f"smooth: strength {s:.4g} is too large for an object {size:.4g} long (at most {MAX_STRENGTH_REL * size:.4g}): "
+                f"smooth: strength {_shown(s)} is too large for an object {size:.4g} long (at most {MAX_STRENGTH_REL * size:.4g}): "
                 "give the size of the bumps to remove, not of the object"
             )
         creases = params.get("creases")
