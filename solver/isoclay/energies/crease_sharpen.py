@@ -49,10 +49,15 @@ TRUST = 0.35
 #: RoundedBoxSDF roundings 0.05-0.36 at 128 cells: a fillet's readings move by under 15% per
 #: doubling of the blur while it is trusted; a sharp crease's or a voxel ripple's double).
 STABLE = 1.3
-#: Side: curvature * R below this (radius of curvature above 5 R: flat or gently curved).
-SIDE = 0.2
-#: Rounding: radius of curvature up to FILLET_MAX * R.
+#: Flat: curvature * R below this (radius of curvature above 5 R). Detection needs flat sides; a
+#: side's extension is straight across its border below this curvature.
+FLAT = 0.2
+#: Rounding: radius of curvature up to FILLET_MAX * R; anything gentler is a side (flat or
+#: gently curved, extended with its own curvature).
 FILLET_MAX = 1.5
+#: The curvature across a side's border is fitted over its half-disc with this ridge (in R) on
+#: the spread of the samples across, so a strip a few cells wide reads as flat, not as noise.
+CURVATURE_RIDGE_R = 0.05
 #: Cylinder-like (fillet) samples: the smaller principal curvature below this share of the larger.
 CYLINDER = 0.35
 #: Detection: radii considered lie between MIN_RADIUS_CELLS cells (sharper is already as sharp
@@ -68,17 +73,34 @@ MIN_FILLET_AREA = 0.01
 RADIUS_QUANTILE = 0.75
 #: Neighbouring side samples belong to one patch while their normals differ by less than this.
 PATCH_DEGREES = 20.0
-#: A patch smaller than this (in R^2) is a spot of noise, not a side.
+#: A patch smaller than this (in R^2) is a spot of noise, not a side; a patch with no sample
+#: CORE_R * R (and CORE_CELLS cells) clear of every non-side sample is a strip, not a side (the
+#: demo anvil's front turns from round to hollow along a strip one to two cells wide, whose
+#: tilted plane once pushed a ledge out of the front).
 MIN_PATCH_AREA_R2 = 0.1
+CORE_R = 0.0
+CORE_CELLS = 0.0
 #: Border planes are averaged over side samples of the same patch within this many R (and at least 2 cells).
 PLANE_DISC_R = 0.6
-#: Reach of a rounding sample toward the sides' borders, in its own radius (+2 cells): a 90-degree
-#: fillet's middle lies 0.77 r from each side, a corner's centre 0.96 r from its three.
-REACH = 1.5
-#: Largest change, in the rounding's radius (a cube corner is 0.73 r inside the sharp corner).
+#: Sides a rounding runs into (_touching_sides): border planes are looked for within SEARCH
+#: times the largest rounding (+3 cells; a 90-degree fillet's middle lies 0.77 r from each
+#: side's border, a corner's centre 0.96 r from its three, and the disc-averaged plane point sits
+#: up to PLANE_DISC_R inside the border); the circle from the sample to the plane must touch it
+#: within TOUCH of its radius (+TOUCH_CELLS cells) from a sample of that side.
+SEARCH = 2.5
+TOUCH = 0.5
+TOUCH_CELLS = 2.0
+#: Largest change, in the rounding's radius: CAP_SLACK times the rolling-ball gap to where its
+#: sides meet (_sagitta: 0.41 r on a 90-degree crease, 0.73 r at a cube corner; the slack covers
+#: fitted radius readings 20% low), never more than CAP. The change bends off from KNEE of it.
 CAP = 1.0
-#: Two sides make a crease only if their normals differ by less than this (antipodal sides: a slab).
-MAX_SIDE_ANGLE = 150.0
+CAP_SLACK = 1.25
+KNEE = 0.75
+#: Two sides make a crease only if their normals differ by less than this: the edge of a wedge
+#: sharper than 60 degrees lies more than one radius (CAP) beyond its rounding's middle, out of
+#: reach, and a rounding between nearly opposite sides is a slab's round front (the slumped demo
+#: anvil's foot, between its sole and its sloping top at 143 degrees, once grew a ledge).
+MAX_SIDE_ANGLE = 120.0
 #: Cone test: the rounding's normal must be a combination of the sides' normals with weights
 #: above -CONE_SLACK and leave a residual below CONE_RESIDUAL.
 CONE_SLACK = 0.1
@@ -236,13 +258,18 @@ def detect_radius(s: _Samples, cell: float) -> float | None:
     order = np.argsort(r)
     cum = np.cumsum(w[order])
     radius = float(r[order][np.searchsorted(cum, RADIUS_QUANTILE * cum[-1])])
-    if s.area[np.abs(s.k_big) * radius < SIDE].sum() < MIN_SIDE_AREA * total:
+    if s.area[np.abs(s.k_big) * radius < FLAT].sum() < MIN_SIDE_AREA * total:
         return None
     return radius
 
 
-def _side_patches(s: _Samples, side: np.ndarray, radius: float):
-    """Label (n,) of each side sample's patch (-1 elsewhere) and the patch count."""
+def _side_patches(s: _Samples, side: np.ndarray, radius: float, cell: float):
+    """Label (n,) of each side sample's patch (-1 elsewhere) and the patch count.
+
+    A patch must have area (MIN_PATCH_AREA_R2) and a core: some sample at least CORE_R * radius
+    (and CORE_CELLS cells) from every sample that is not a side. A strip of low curvature where a
+    round front turns into a hollow (an inflection line) has area but no core and is no side.
+    """
     a, b = s.edges[:, 0], s.edges[:, 1]
     keep = side[a] & side[b] & ((s.normals[a] * s.normals[b]).sum(1) > np.cos(np.radians(PATCH_DEGREES)))
     n = len(s.points)
@@ -253,6 +280,12 @@ def _side_patches(s: _Samples, side: np.ndarray, radius: float):
         return comp, 0
     areas = np.bincount(comp[side], weights=s.area[side], minlength=comp.max() + 1)
     big = areas >= MIN_PATCH_AREA_R2 * radius**2
+    if (~side).any():
+        clearance = np.zeros(n)
+        clearance[side] = cKDTree(s.points[~side]).query(s.points[side])[0]
+        core = np.zeros(comp.max() + 1, dtype=bool)
+        core[comp[side & (clearance >= max(CORE_R * radius, CORE_CELLS * cell))]] = True
+        big &= core
     label = np.where(side & big[np.maximum(comp, 0)], comp, -1)
     used, label_c = np.unique(label[label >= 0], return_inverse=True)
     out = np.full(n, -1)
@@ -260,9 +293,49 @@ def _side_patches(s: _Samples, side: np.ndarray, radius: float):
     return out, len(used)
 
 
-def _border_planes(s: _Samples, label: np.ndarray, radius: float, cell: float):
-    """Planes (points (b, 3), normals (b, 3), labels (b,)) at the borders of the side patches,
-    thinned to about one per R/6 per patch, each averaged over a disc of the side."""
+@dataclass(frozen=True)
+class _Sides:
+    """The sides' borders, each extended beyond the border as a cylinder of the side's own curvature
+    across it (a plane where the side is flat).
+
+    point : (b, 3) on the side at its border; normal : (b, 3) the side's normal there;
+    curvature : (b,) across the border (positive convex, 0 = flat); axis : (b, 3) along the border;
+    label : (b,) patch
+    """
+
+    point: np.ndarray
+    normal: np.ndarray
+    curvature: np.ndarray
+    axis: np.ndarray
+    label: np.ndarray
+
+    def distance(self, points: np.ndarray, which: np.ndarray, planes_from: int | None = None) -> np.ndarray:
+        """(m, K) signed distances of points (m, 3) to the extended sides which (m, K) (nan where -1);
+        columns from planes_from on are taken as the border's tangent planes (no curvature)."""
+        out = np.full(which.shape, np.nan)
+        row, slot = np.nonzero(which >= 0)
+        j = which[row, slot]
+        r = points[row] - self.point[j]
+        a = self.axis[j]
+        r -= (r * a).sum(1, keepdims=True) * a
+        nrm = self.normal[j]
+        k = self.curvature[j]
+        if planes_from is not None:
+            k = np.where(slot >= planes_from, 0.0, k)
+        # the cylinder of curvature k through the border point: (|N + k r| - 1) / k, written so
+        # that it becomes the plane's r . N as k goes to 0
+        along = (r * nrm).sum(1)
+        rr = (r * r).sum(1)
+        bent = np.sqrt(np.maximum(1.0 + 2.0 * k * along + k * k * rr, 0.0))
+        out[row, slot] = (2.0 * along + k * rr) / (1.0 + bent)
+        return out
+
+
+def _border_sides(s: _Samples, label: np.ndarray, radius: float, cell: float) -> _Sides:
+    """The sides at the borders of the patches, thinned to about one per R/6 per patch, each fitted
+    over a half-disc of its side (PLANE_DISC_R): mean point and normal, and the rate at which the
+    normal turns across the border (its curvature there; below FLAT / R it counts as flat, so a
+    flat face's voxel ripple does not bend its extension)."""
     a, b = s.edges[:, 0], s.edges[:, 1]
     border = np.zeros(len(s.points), dtype=bool)
     cut = label[a] != label[b]
@@ -270,11 +343,13 @@ def _border_planes(s: _Samples, label: np.ndarray, radius: float, cell: float):
     border[b[cut & (label[b] >= 0)]] = True
     idx = np.flatnonzero(border)
     if len(idx) == 0:
-        return np.zeros((0, 3)), np.zeros((0, 3)), np.zeros(0, dtype=np.int64)
+        z = np.zeros((0, 3))
+        return _Sides(z, z, np.zeros(0), z, np.zeros(0, dtype=np.int64))
     spacing = max(radius / 6.0, cell)
     key = np.column_stack([np.floor(s.points[idx] / spacing).astype(np.int64), label[idx]])
     _, first = np.unique(key, axis=0, return_index=True)
     idx = idx[first]
+    nb = len(idx)
     sides = np.flatnonzero(label >= 0)
     disc = max(PLANE_DISC_R * radius, 2.0 * cell)
     pairs = cKDTree(s.points[idx]).sparse_distance_matrix(cKDTree(s.points[sides]), disc, output_type="coo_matrix")
@@ -282,39 +357,151 @@ def _border_planes(s: _Samples, label: np.ndarray, radius: float, cell: float):
     same = label[idx[row]] == label[col]
     row, col = row[same], col[same]
     w = s.area[col]
-    count = np.bincount(row, weights=w, minlength=len(idx))[:, None]
-    centre = np.stack([np.bincount(row, weights=w * s.points[col, k], minlength=len(idx)) for k in range(3)], 1) / np.maximum(count, 1e-300)
-    normal = np.stack([np.bincount(row, weights=w * s.normals[col, k], minlength=len(idx)) for k in range(3)], 1)
-    normal /= np.maximum(np.linalg.norm(normal, axis=1, keepdims=True), 1e-12)
-    return centre, normal, label[idx]
+    weight = np.maximum(np.bincount(row, weights=w, minlength=nb), 1e-300)
+
+    def mean(values):
+        return np.bincount(row, weights=w * values, minlength=nb) / weight
+
+    centre = np.stack([mean(s.points[col, k]) for k in range(3)], 1)
+    m = np.stack([mean(s.normals[col, k]) for k in range(3)], 1)
+    m /= np.maximum(np.linalg.norm(m, axis=1, keepdims=True), 1e-12)
+    out = s.points[idx] - centre
+    t = out - (out * m).sum(1, keepdims=True) * m  # across the border, outward
+    t /= np.maximum(np.linalg.norm(t, axis=1, keepdims=True), 1e-12)
+    rel = s.points[col] - centre[row]
+    u = (rel * t[row]).sum(1)  # across
+    tilt = (s.normals[col] * t[row]).sum(1)  # the normal's lean across: turns at the curvature's rate
+    height = (rel * m[row]).sum(1)
+    mu, mt = mean(u), mean(tilt)
+    var = mean((u - mu[row]) ** 2)
+    beta = mean((u - mu[row]) * (tilt - mt[row])) / (var + (CURVATURE_RIDGE_R * radius) ** 2)
+    beta = np.sign(beta) * np.maximum(np.abs(beta) - FLAT / radius, 0.0)
+    # a side whose own curvature readings (multi-scale, noise-free) say flat is flat: its rim's
+    # first turn toward the rounding must not bend the extension outward
+    beta[mean(np.abs(s.k_big[col])) * radius < FLAT] = 0.0
+    alpha = mt - beta * mu
+    c0 = mean(height + alpha[row] * u + 0.5 * beta[row] * u * u)
+    ub = (out * t).sum(1)
+    point = centre + ub[:, None] * t + (c0 - alpha * ub - 0.5 * beta * ub * ub)[:, None] * m
+    normal = m + (alpha + beta * ub)[:, None] * t
+    normal /= np.linalg.norm(normal, axis=1, keepdims=True)
+    curvature = beta
+    axis = np.cross(m, t)
+    axis /= np.maximum(np.linalg.norm(axis, axis=1, keepdims=True), 1e-12)
+    return _Sides(point, normal, curvature, axis, label[idx])
 
 
-def _sides_within_reach(points, reach, plane_points, plane_labels):
-    """For each point, the nearest border plane of each patch within its reach, nearest first:
-    (m, MAX_SIDES) plane indices, -1 padded."""
-    out = np.full((len(points), MAX_SIDES), -1, dtype=np.int64)
-    if len(plane_points) == 0 or len(points) == 0:
+def _touching_sides(points, normals, largest, convex, found: _Sides, side_tree, side_label, cell):
+    """For each rounding sample, the sides it rounds into, best first, and the sides that bound
+    its change: two (m, MAX_SIDES) arrays of border indices into `found`, -1 padded.
+
+    A rounding between sides is swept by a ball tangent to each of them (the rolling-ball blend;
+    Rossignac & Requicha 1984, "Constant-radius blending in solid modeling"). Seen from a sample x
+    with normal n on a convex rounding (s = +1; concave s = -1), the circle through x with normal n
+    tangent to a side's plane (p, m) has the radius r = -s (x - p) . m / (1 - n . m) and touches
+    the plane at x - s r (n - m). The side is one the rounding runs into when that radius is a
+    rounding's (at most `largest`, and x not beyond the plane) and the touching point lies at that
+    side's border. A plane of the same orientation further away (a foot's front below a face's
+    front) or a gently curved side's far border is never taken, and a corner's three sides are
+    found however far the corner lies from the patches' middles.
+
+    Every facing side within `largest` of x also bounds the change: a convex rounding never grows
+    through a side's extension that it lies within (nor a concave one shrinks through one it lies
+    outside), so a side missed as a partner cannot let a wedge run out past it as a spike.
+    """
+    m = len(points)
+    empty = np.full((m, MAX_SIDES), -1, dtype=np.int64)
+    if len(found.label) == 0 or m == 0:
+        return empty, empty.copy()
+    sign = np.where(convex, 1.0, -1.0)
+    reach = SEARCH * largest + 3.0 * cell
+    partner, bound = [], []  # (row, border index, patch, key)
+    for patch in np.unique(found.label):
+        members = np.flatnonzero(found.label == patch)
+        tree = cKDTree(found.point[members])
+        apart, j = tree.query(points, distance_upper_bound=reach)
+        row = np.flatnonzero(np.isfinite(apart))
+        if len(row) == 0:
+            continue
+        col = members[j[row]]
+        cos, depth = _facing(points[row], normals[row], sign[row], found, col)
+        facing = (cos > 0.05) & (depth > -0.5 * cell)
+        near = facing & (apart[row] <= largest + 3.0 * cell)
+        bound.append((row[near], col[near], apart[row][near]))
+        # the border point nearest to where the circle touches, found in two passes
+        for _ in range(2):
+            radius = np.maximum(depth, 0.0) / np.maximum(1.0 - cos, 1e-3)
+            at = points[row] - (sign[row] * radius)[:, None] * (normals[row] - found.normal[col])
+            touch, j = tree.query(at)
+            col = members[j]
+            cos, depth = _facing(points[row], normals[row], sign[row], found, col)
+        radius = np.maximum(depth, 0.0) / np.maximum(1.0 - cos, 1e-3)
+        at = points[row] - (sign[row] * radius)[:, None] * (normals[row] - found.normal[col])
+        touch = np.linalg.norm(at - found.point[col], axis=1)
+        # next to the border depth and 1 - cos both vanish: half a cell of depth is slack, not radius
+        ok = (cos > 0.05) & (depth > -0.5 * cell) & (depth <= (1.0 - cos) * (largest + cell) + 0.5 * cell)
+        ok &= touch <= TOUCH * radius + TOUCH_CELLS * cell
+        ok[ok] = side_label[side_tree.query(at[ok])[1]] == patch  # the circle touches this side, not another
+        partner.append((row[ok], col[ok], touch[ok]))
+
+    def table(parts):
+        if not parts:
+            return empty.copy()
+        row, col, key = (np.concatenate(x) for x in zip(*parts))
+        return _nearest_per_patch(m, row, col, found.label[col], key, MAX_SIDES)
+
+    return table(partner), table(bound)
+
+
+def _facing(points, normals, sign, found: _Sides, col):
+    """(cos between sample and border normals, how far each sample lies on the material's side of the border's plane)."""
+    m = found.normal[col]
+    return (normals * m).sum(1), -sign * ((points - found.point[col]) * m).sum(1)
+
+
+def _nearest_per_patch(m: int, row, col, lab, key, limit: int) -> np.ndarray:
+    """(m, limit) for each row the col of smallest key per patch lab, those sorted by key; -1 padded."""
+    out = np.full((m, limit), -1, dtype=np.int64)
+    if len(row) == 0:
         return out
-    tree = cKDTree(plane_points)
-    hits = tree.query_ball_point(points, reach)
-    lengths = np.fromiter((len(x) for x in hits), dtype=np.int64, count=len(hits))
-    if lengths.sum() == 0:
-        return out
-    row = np.repeat(np.arange(len(points)), lengths)
-    col = np.fromiter((j for x in hits for j in x), dtype=np.int64, count=int(lengths.sum()))
-    dist = np.linalg.norm(points[row] - plane_points[col], axis=1)
-    lab = plane_labels[col]
-    order = np.lexsort((dist, lab, row))
-    row, col, lab, dist = row[order], col[order], lab[order], dist[order]
+    order = np.lexsort((key, lab, row))
+    row, col, lab, key = row[order], col[order], lab[order], key[order]
     first = np.ones(len(row), dtype=bool)
     first[1:] = (row[1:] != row[:-1]) | (lab[1:] != lab[:-1])
-    row, col, dist = row[first], col[first], dist[first]
-    order = np.lexsort((dist, row))
+    row, col, key = row[first], col[first], key[first]
+    order = np.lexsort((key, row))
     row, col = row[order], col[order]
-    start = np.searchsorted(row, np.arange(len(points)))
+    start = np.searchsorted(row, np.arange(m))
     rank = np.arange(len(row)) - start[row]
-    keep = rank < MAX_SIDES
+    keep = rank < limit
     out[row[keep], rank[keep]] = col[keep]
+    return out
+
+
+def _bordering_only(s: _Samples, rounding: np.ndarray, label: np.ndarray, idx: np.ndarray, sides: np.ndarray,
+                    side_label: np.ndarray, patches: int, radius: float) -> np.ndarray:
+    """sides (m, MAX_SIDES) of the rounding samples idx, keeping only patches that the sample's
+    rounding region (connected rounding samples) borders, and none on a region smaller than
+    MIN_PATCH_AREA_R2 R^2. A spot of noise in the middle of a face borders only that face, so it
+    never reaches for the sides of the edge beyond it."""
+    a, b = s.edges[:, 0], s.edges[:, 1]
+    n = len(s.points)
+    both = rounding[a] & rounding[b]
+    graph = scipy.sparse.coo_matrix((np.ones(int(both.sum())), (a[both], b[both])), shape=(n, n))
+    _, comp = scipy.sparse.csgraph.connected_components(graph, directed=False)
+    count = comp.max() + 1
+    touching = np.zeros((count, max(patches, 1)), dtype=bool)
+    for u, v in ((a, b), (b, a)):
+        hit = rounding[u] & (label[v] >= 0)
+        touching[comp[u[hit]], label[v[hit]]] = True
+    area = np.bincount(comp[rounding], weights=s.area[rounding], minlength=count)
+    touching &= (area >= MIN_PATCH_AREA_R2 * radius**2)[:, None]
+    valid = sides >= 0
+    keep = valid & touching[comp[idx][:, None], side_label[np.maximum(sides, 0)]]
+    out = np.full_like(sides, -1)
+    rank = np.cumsum(keep, axis=1) - 1
+    r, c = np.nonzero(keep)
+    out[r, rank[r, c]] = sides[r, c]
     return out
 
 
@@ -367,9 +554,29 @@ def _between(n_x: np.ndarray, sides: np.ndarray, plane_normals: np.ndarray) -> n
 
 
 def _soft_cap(x: np.ndarray, cap: np.ndarray) -> np.ndarray:
-    """x for 0 <= x <= cap / 2, then bending smoothly (C1) toward cap; x >= 0."""
-    half = 0.5 * cap
-    return np.where(x <= half, x, half + half * np.tanh((x - half) / np.maximum(half, 1e-300)))
+    """x for 0 <= x <= KNEE * cap, then bending smoothly (C1) toward cap; x >= 0."""
+    knee = KNEE * cap
+    rest = np.maximum(cap - knee, 1e-300)
+    return np.where(x <= knee, x, knee + rest * np.tanh((x - knee) / rest))
+
+
+def _sagitta(partner_normals: np.ndarray, count: np.ndarray) -> np.ndarray:
+    """(m,) how far beyond a rolling ball of radius 1 its sides' planes meet: for the ball tangent
+    to k = 2 or 3 planes with unit normals (the first k of partner_normals (m, 3, 3)), the point
+    where they meet lies at |c| = sqrt(1^T G^-1 1) from its centre (G the normals' Gram matrix),
+    so the gap is |c| - 1: 1 / cos(theta / 2) - 1 for a crease of angle theta (0.41 at 90
+    degrees), sqrt(3) - 1 = 0.73 at a cube's corner. Capped at CAP."""
+    m = len(count)
+    k3 = count >= 3
+    gram = np.einsum("mic,mjc->mij", partner_normals, partner_normals)
+    gram[~k3, 2, :] = 0.0
+    gram[~k3, :, 2] = 0.0
+    gram[~k3, 2, 2] = 1.0
+    ones = np.ones((m, 3))
+    ones[~k3, 2] = 0.0
+    sol = np.linalg.solve(gram + 1e-9 * np.eye(3), ones[:, :, None])[:, :, 0]
+    reach = np.sqrt(np.maximum((ones * sol).sum(1), 1.0))
+    return np.minimum(reach - 1.0, CAP)
 
 
 def find_roundings(grid: NodeGrid, radius: float | None = None, should_stop=None):
@@ -381,21 +588,27 @@ def find_roundings(grid: NodeGrid, radius: float | None = None, should_stop=None
     radius = detect_radius(s, h) if radius is None else float(radius)
     if radius is None:
         return Roundings(None, len(s.points), 0, 0, 0, 0), None
-    side = np.abs(s.k_big) * radius < SIDE
-    label, patches = _side_patches(s, side, radius)
-    fillet = (label < 0) & ~side & (s.radius <= FILLET_MAX * radius)
-    plane_p, plane_n, plane_l = _border_planes(s, label, radius, h)
-    if len(plane_p) == 0:
+    side = s.radius > FILLET_MAX * radius
+    label, patches = _side_patches(s, side, radius, h)
+    fillet = ~side
+    found = _border_sides(s, label, radius, h)
+    if len(found.label) == 0:
         return Roundings(radius, len(s.points), int(side.sum()), int(fillet.sum()), 0, patches), None
     idx = np.flatnonzero(fillet)
     local = np.clip(s.radius[idx], 2.0 * h, FILLET_MAX * radius)
-    sides = _sides_within_reach(s.points[idx], REACH * local + 2.0 * h, plane_p, plane_l)
-    between = _between(s.normals[idx], sides, plane_n)
+    on_side = np.flatnonzero(label >= 0)
+    sides, blockers = _touching_sides(s.points[idx], s.normals[idx], FILLET_MAX * radius, s.k_big[idx] > 0, found,
+                                      cKDTree(s.points[on_side]), label[on_side], h)
+    sides = _bordering_only(s, fillet, label, idx, sides, found.label, patches, radius)
+    between = _between(s.normals[idx], sides, found.normal)
     gate = np.zeros(len(s.points))
     gate[idx[between]] = 1.0
-    # average the gate over mesh neighbours so its edge is a ramp, not a seam
+    # average the gate over neighbouring rounding samples so it ramps where a crease begins or
+    # ends, not where the rounding meets its sides (that would leave the sides' border half done)
     n = len(s.points)
-    adj = scipy.sparse.coo_matrix((np.ones(2 * len(s.edges)), (np.r_[s.edges[:, 0], s.edges[:, 1]], np.r_[s.edges[:, 1], s.edges[:, 0]])), shape=(n, n)).tocsr()
+    ea, eb = s.edges[:, 0], s.edges[:, 1]
+    inner = fillet[ea] & fillet[eb]
+    adj = scipy.sparse.coo_matrix((np.ones(2 * int(inner.sum())), (np.r_[ea[inner], eb[inner]], np.r_[eb[inner], ea[inner]])), shape=(n, n)).tocsr()
     adj = adj + scipy.sparse.identity(n, format="csr")
     deg = np.asarray(adj.sum(1)).ravel()
     for _ in range(GATE_SMOOTHING):
@@ -403,12 +616,20 @@ def find_roundings(grid: NodeGrid, radius: float | None = None, should_stop=None
     # a ramp where creases begin or end, but a lone failed test inside a crease leaves no dent
     gate = _smoothstep((gate - 0.2) / 0.6)
     gate[~fillet] = 0.0
-    all_sides = np.full((n, MAX_SIDES), -1, dtype=np.int64)
-    all_sides[idx] = sides
+    all_sides = np.full((n, 2 * MAX_SIDES), -1, dtype=np.int64)
+    same = (blockers[:, :, None] == sides[:, None, :]).any(2)  # a bound that is a partner already
+    all_sides[idx] = np.concatenate([sides, np.where(same, -1, blockers)], axis=1)  # the partners first, then the bounds
     all_local = np.zeros(n)
     all_local[idx] = local
+    # the change is bounded by how far the partners' planes meet beyond a rolling ball of the
+    # rounding's own radius: planes that do not describe this rounding cannot carve or swell it
+    valid = sides >= 0
+    count = np.minimum(valid.sum(1), 3)
+    pn = np.where(valid[:, :3, None], found.normal[np.maximum(sides[:, :3], 0)], 0.0)
+    all_cap = np.zeros(n)
+    all_cap[idx] = np.where(count >= 2, np.minimum(CAP_SLACK * _sagitta(pn, count), CAP) * local + 0.5 * h, 0.0)
     report = Roundings(radius, n, int(side.sum()), int(fillet.sum()), int(between.sum()), patches)
-    plan = {"samples": s, "gate": gate, "sides": all_sides, "local": all_local, "plane_p": plane_p, "plane_n": plane_n}
+    plan = {"samples": s, "gate": gate, "sides": all_sides, "local": all_local, "cap": all_cap, "found": found}
     return report, plan
 
 
@@ -417,56 +638,61 @@ def _smoothstep(t):
     return t * t * (3.0 - 2.0 * t)
 
 
-def _sample_gaps(s: _Samples, active: np.ndarray, sides: np.ndarray, plane_p, plane_n, cap: np.ndarray) -> np.ndarray:
-    """(n,) how far each active sample lies from the sharp shape along its normal (its planes'
-    maximum, or minimum when concave), capped; 0 elsewhere."""
+def _sample_gaps(s: _Samples, active: np.ndarray, sides: np.ndarray, found: _Sides, cap: np.ndarray) -> np.ndarray:
+    """(n,) how far each active sample lies from the sharp shape along its normal (outward on a
+    convex rounding, where the ray leaves the intersection of its sides' half-spaces; inward on a
+    concave one), through the sides' tangent planes, capped; 0 elsewhere. A cube corner's sample
+    on the diagonal lies 0.73 r from the corner along it, though only 0.42 r below each plane."""
     gap = np.zeros(len(s.points))
     idx = np.flatnonzero(active)
-    plane = _planes_at(s.points[idx], sides[idx], plane_p, plane_n)
-    convex = s.k_big[idx] > 0
-    upper = np.where(np.isfinite(plane), plane, -np.inf).max(1)
-    lower = np.where(np.isfinite(plane), plane, np.inf).min(1)
-    gap[idx] = np.minimum(np.where(convex, np.maximum(-upper, 0.0), np.maximum(lower, 0.0)), cap[idx])
+    plane = found.distance(s.points[idx], sides[idx], 0)  # tangent planes
+    cos = np.einsum("mkc,mc->mk", found.normal[np.maximum(sides[idx], 0)], s.normals[idx])
+    sign = np.where(s.k_big[idx] > 0, 1.0, -1.0)[:, None]
+    ahead = np.isfinite(plane) & (cos > 0.1)
+    along = np.where(ahead, -sign * plane / np.where(ahead, cos, 1.0), np.inf)
+    gap[idx] = np.minimum(np.maximum(along.min(1), 0.0), cap[idx])
+    gap[idx[~np.isfinite(along.min(1))]] = 0.0
     return gap
 
 
-def _planes_at(points: np.ndarray, sides: np.ndarray, plane_p, plane_n) -> np.ndarray:
-    """(m, K) signed distances of points to their sides' planes (nan where a slot is empty)."""
-    valid = sides >= 0
-    p = plane_p[np.maximum(sides, 0)]
-    nrm = plane_n[np.maximum(sides, 0)]
-    out = ((points[:, None, :] - p) * nrm).sum(-1)
-    return np.where(valid, out, np.nan)
+def _nodes_to_update(grid: NodeGrid, s: _Samples, active: np.ndarray, gap: np.ndarray, found: _Sides, sides: np.ndarray):
+    """The nodes a sharpening changes, the active sample each belongs to, and the distance of
+    each to that sample's sharp shape (the maximum of its sides' extensions when convex, the
+    minimum when concave).
 
-
-def _nodes_to_update(grid: NodeGrid, s: _Samples, active: np.ndarray, gap: np.ndarray):
-    """The nodes a sharpening changes and, for each, the active sample it belongs to.
-
-    Each active sample marches along its normal (inward for a concave rounding) from FADE_CELLS
-    inside the old surface to FADE_CELLS beyond the sharp shape and claims the nodes it passes
-    (the sample a node is closest to, up to ties); nodes next to claimed ones are claimed by a
-    neighbour, so diverging rays leave no holes. Nodes farther out keep their values: the step
-    there lies FADE_CELLS from both surfaces, where an interpolating cubic spline's ringing has
-    decayed by 0.27^FADE_CELLS (the prefilter's pole, sqrt(3) - 2; Unser 1999).
-    Returns (flat node indices, sample indices).
+    A node near the surface belongs to its nearest surface sample; when that one is active it changes if it lies between
+    the old and the sharp surface or within FADE_CELLS beyond either, so every node up to the new
+    surface and FADE_CELLS past it is covered, also beside a corner where the samples' normals fan
+    out. Nodes farther out keep their values: the step there lies FADE_CELLS from both surfaces,
+    where an interpolating cubic spline's ringing has decayed by 0.27^FADE_CELLS (the
+    prefilter's pole, sqrt(3) - 2; Unser 1999).
+    Returns (flat node indices, sample indices, sharp-shape distances).
     """
     h = grid.cell
     idx = np.flatnonzero(active)
-    x, n = s.points[idx], s.normals[idx]
-    far = gap[idx] + FADE_CELLS * h
-    direction = np.where(s.k_big[idx] > 0, 1.0, -1.0)[:, None] * n
-    owner = np.zeros(grid.values.shape, dtype=np.int64)  # sample index + 1, 0 = none
-    origin = grid.axis()[0]
-    hi = grid.side - 1
-    ts = np.arange(-FADE_CELLS * h, float(far.max()) + 0.5 * h, 0.7 * h)
-    for t in ts[np.argsort(-np.abs(ts))]:  # nearest to the surface written last, so it wins
-        sel = t <= far
-        ijk = np.clip(np.rint((x[sel] + t * direction[sel] - origin) / h).astype(np.int64), 0, hi)
-        owner[tuple(ijk.T)] = idx[sel] + 1
-    grown = scipy.ndimage.grey_dilation(owner, size=(3, 3, 3))
-    owner = np.where(owner > 0, owner, grown).reshape(-1)
-    nodes = np.flatnonzero(owner)
-    return nodes, owner[nodes] - 1
+    flat = grid.values.reshape(-1)
+    fade = FADE_CELLS * h
+    convex_active = s.k_big[idx] > 0
+    out_reach = float(gap[idx[convex_active]].max(initial=-fade)) + fade  # beyond convex roundings
+    in_reach = float(gap[idx[~convex_active]].max(initial=-fade)) + fade  # into concave ones
+    reach = max(out_reach, in_reach)
+    band = np.flatnonzero(((flat > -fade) & (flat < out_reach)) | ((flat < fade) & (flat > -in_reach)))
+    # a node whose nearest surface sample is a side (or an untouched rounding) keeps its value: the
+    # sides' extensions never reach back over the sides themselves
+    distance, nearest = cKDTree(s.points).query(grid.positions(band), distance_upper_bound=reach)
+    found_ = np.isfinite(distance)
+    found_[found_] = active[nearest[found_]]
+    band, owner = band[found_], nearest[found_]
+    convex = s.k_big[owner] > 0
+    outward = np.where(convex, flat[band], -flat[band])  # toward the sharp shape
+    keep = outward > -fade
+    band, owner, convex = band[keep], owner[keep], convex[keep]
+    plane = found.distance(grid.positions(band), sides[owner], MAX_SIDES)
+    upper = np.where(np.isfinite(plane), plane, -np.inf).max(1)  # intersection of the sides' half-spaces
+    lower = np.where(np.isfinite(plane), plane, np.inf).min(1)  # union
+    sharp = np.where(convex, upper, lower)
+    keep = np.where(convex, sharp, -sharp) <= fade
+    return band[keep], owner[keep], sharp[keep]
 
 
 def sharpen_grid(grid: NodeGrid, amount: float, radius: float | None = None, should_stop=None) -> SharpenReport:
@@ -482,19 +708,15 @@ def sharpen_grid(grid: NodeGrid, amount: float, radius: float | None = None, sho
     h = grid.cell
     s, gate = plan["samples"], plan["gate"]
     active = gate > 1e-3
-    cap_all = CAP * plan["local"]
+    cap_all = plan["cap"]
     flat = grid.values.reshape(-1)
-    gap = _sample_gaps(s, active, plan["sides"], plan["plane_p"], plan["plane_n"], cap_all)
-    near, nearest = _nodes_to_update(grid, s, active, gap)
-    pos = grid.positions(near)
+    gap = _sample_gaps(s, active, plan["sides"], plan["found"], cap_all)
+    near, nearest, sharp = _nodes_to_update(grid, s, active, gap, plan["found"], plan["sides"])
     phi = flat[near]
-    plane = _planes_at(pos, plan["sides"][nearest], plan["plane_p"], plan["plane_n"])
     convex = s.k_big[nearest] > 0
-    upper = np.where(np.isfinite(plane), plane, -np.inf).max(1)  # intersection of the sides' half-spaces
-    lower = np.where(np.isfinite(plane), plane, np.inf).min(1)  # union
     cap = cap_all[nearest]
-    grow = _soft_cap(np.maximum(phi - upper, 0.0), cap)  # convex roundings only gain material
-    shrink = _soft_cap(np.maximum(lower - phi, 0.0), cap)  # concave ones only lose it
+    grow = _soft_cap(np.maximum(phi - sharp, 0.0), cap)  # convex roundings only gain material
+    shrink = _soft_cap(np.maximum(sharp - phi, 0.0), cap)  # concave ones only lose it
     change = np.where(convex, -grow, shrink) * gate[nearest] * amount
     delta = np.zeros(flat.size)
     delta[near] = change

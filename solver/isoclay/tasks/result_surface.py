@@ -80,6 +80,8 @@ class SurfaceOptions:
     creases : "auto" (restore creases only between flat sides), "crisp" (wherever a rounded strip
         shows), "soft" (never)
     cell : the edited field's grid cell (unit box)
+    min_resolution : the fewest marching-cubes cells along the longest side when the resolution
+        follows the input (a sharpened corner needs cells finer than a coarse input's edges)
     """
 
     keep_topology: bool
@@ -87,17 +89,18 @@ class SurfaceOptions:
     closed: bool
     creases: str
     cell: float
+    min_resolution: int = AUTO_RESOLUTION_MIN
 
 
-def auto_resolution(mesh: TriangleMesh, cell: float) -> int:
+def auto_resolution(mesh: TriangleMesh, cell: float, least: int = AUTO_RESOLUTION_MIN) -> int:
     """Cells along the longest side so the new mesh's edges are about the input's median edge,
-    between AUTO_RESOLUTION_MIN and AUTO_CELLS_PER_FIELD_CELL per field cell."""
+    between `least` and AUTO_CELLS_PER_FIELD_CELL per field cell."""
     e = mesh.vertices[mesh.faces]
     lengths = np.linalg.norm(np.concatenate([e[:, 1] - e[:, 0], e[:, 2] - e[:, 1], e[:, 0] - e[:, 2]]), axis=1)
     median = float(np.median(lengths)) if len(lengths) else 1.0
     side = float(np.max(mesh.vertices.max(0) - mesh.vertices.min(0))) if mesh.n_vertices else 1.0
-    top = max(AUTO_RESOLUTION_MIN, int(np.ceil(AUTO_CELLS_PER_FIELD_CELL * side / cell)))
-    return int(np.clip(np.ceil(side / max(median, 1e-9)), AUTO_RESOLUTION_MIN, top))
+    top = max(least, int(np.ceil(AUTO_CELLS_PER_FIELD_CELL * side / cell)))
+    return int(np.clip(np.ceil(side / max(median, 1e-9)), least, top))
 
 
 def surface_of(new_field, mesh: TriangleMesh, options: SurfaceOptions, progress, should_stop, seconds: dict, task: str):
@@ -117,7 +120,7 @@ def surface_of(new_field, mesh: TriangleMesh, options: SurfaceOptions, progress,
         from ..extract import bounds_of, decimate, extract_mesh
         from ..extract.footprint import trim_to_footprint
 
-        resolution = options.resolution or auto_resolution(mesh, options.cell)
+        resolution = options.resolution or auto_resolution(mesh, options.cell, options.min_resolution)
         lo, hi = bounds_of(mesh.vertices, margin=0.05)
         out = extract_mesh(new_field, lo, hi, resolution, progress, should_stop)
         more["surface_resolution"] = float(resolution)

@@ -6,6 +6,8 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 
+import numpy as np
+
 from ..energies.crease_sharpen import sharpen_grid
 from ..energies.curvature_flow import enclosed_volume, spline_of, unit_box_grid
 from ..errors import InvalidInput
@@ -22,6 +24,11 @@ MAX_RADIUS = 0.4
 #: (1.2% of the longest side) are found, and a 50k-vertex prop sharpens in about 1.5 s on one
 #: core (measured on the bench's anvil block); finer grids cost 8x per doubling.
 WORKING_RESOLUTION = 128
+#: The new surface is extracted at least this many cells per working-grid cell (then decimated
+#: toward the input's size): marching cubes cuts a corner by about a cell, so a 96-vertex cube
+#: extracted at 64 cells kept a corner gap of 0.019 of its side where the field's own corner is
+#: 0.005 from the sharp one; at 1.25 per field cell (140 cells) the gap is 0.010 (measured).
+SURFACE_CELLS_PER_FIELD_CELL = 1.25
 
 
 @dataclass(frozen=True)
@@ -90,7 +97,8 @@ def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> Tas
     found = report.roundings
     progress("sharpen", 1.0, {"changed": report.changed, "radius": found.radius})
     seconds = {"sharpen": time.perf_counter() - t0}
-    options = SurfaceOptions(config.keep_topology, config.resolution, config.closed, "soft", grid.cell)
+    least = int(np.ceil(SURFACE_CELLS_PER_FIELD_CELL / grid.cell))
+    options = SurfaceOptions(config.keep_topology, config.resolution, config.closed, "soft", grid.cell, least)
     out, more = surface_of(new_field, mesh, options, progress, should_stop, seconds, "sharpen")
     metrics = {
         "field_volume_change": enclosed_volume(grid) / max(volume_before, 1e-300) - 1.0,
