@@ -37,9 +37,15 @@ from .result_surface import shown as _shown
 #: Largest strength accepted, as a fraction of the object's longest side: beyond it the whole
 #: object is a "bump" and smoothing would melt it.
 MAX_STRENGTH_REL = 0.25
-#: Flow time per round in units of strength^2: ripples of wavelength `strength` decay by
-#: exp(-(2 pi)^2 * 0.08) ~ 1/24 per round (common practice, no source).
-FLOW_TIME_PER_STRENGTH2 = 0.25
+#: Flow time per round (organic surfaces) in units of strength^2. What is left of ripples after
+#: both rounds, by wavelength in strengths (a bump is half a wave; measured on a rippled slab of
+#: amplitude 0.01 through smooth_grid): 2: 0, 3: 0.05, 4: 0.24, 6: 0.66. The issue's noisy sphere
+#: (white noise at the vertex spacing, strength twice the spacing) asks for the residual <= 0.25
+#: of the input's, which white noise allows only when little shorter than 3.7 strengths survives
+#: (its 144 modes up to that wavelength alone hold 0.24 of it on the 2562-vertex sphere): at 0.25
+#: (wavelength 4 kept 0.35) the sphere kept 0.21-0.24 over four noise seeds, at 0.4 with the
+#: wider guide 0.19-0.22.
+FLOW_TIME_PER_STRENGTH2 = 0.4
 #: Working grid cell = strength / CELLS_PER_STRENGTH, within WORKING_RESOLUTION cells across the
 #: unit box: 3 cells per strength resolves a bump of that size and keeps the filter at 3 passes
 #: and the flow at 5 steps a round at any strength (4 cells: 5 passes, 9 steps, 2.4x the time for
@@ -51,9 +57,10 @@ WORKING_RESOLUTION = (48, 192)
 #: (a half-wave) keeps exp(-2 pi^2 0.7^2 / 4) = 9% of its tilt, one twice that size 55%
 #: (Gaussian attenuation; at 0.5 the noisy sphere kept 25% of its ripple, measured).
 FILTER_SHARE = 0.7
-#: The guide of the bilateral filter is blurred by this share of the strength (1.5 cells at 3
-#: cells per strength): noise gone, creases still two families of normals.
-GUIDE_SHARE = 0.5
+#: The guide of the bilateral filter (organic surfaces) is blurred by this share of the strength
+#: (2 cells at 3 cells per strength): noise gone, broad forms kept (0.5 left the noisy sphere
+#: 0.01-0.02 more of its ripple, see FLOW_TIME_PER_STRENGTH2).
+GUIDE_SHARE = 0.7
 #: Crease treatments: "auto" decides from the data, "crisp" treats the shape as a hard surface
 #: (creases restored wherever a rounded strip shows), "soft" as organic (never restored).
 CREASE_MODES = ("auto", "crisp", "soft")
@@ -174,22 +181,30 @@ def smooth_grid(grid, config: Config, progress, should_stop, excluded=None, hard
     return figures
 
 
+#: Band nodes over an open scan's cap: their distance to the scanned triangles exceeds their
+#: field value by more than this many working cells. Held still and kept out of the normal
+#: filter, they also hold the crease the fit leaves at the rim. Measured on the noisy sphere cut
+#: at z = -0.25 (strength twice the spacing): mean normal error within 0.1 of the rim 9.3 deg at
+#: 0.5 cell (4.6 x the interior's), 10.1 at 1 cell, 11.9 with the earlier test (nearest vertex,
+#: two spacings), 10.3 at 0.1 cell (the fit's own error starts to count as cap).
+CAP_MARGIN_CELLS = 0.5
+
+
 def cap_nodes(grid, mesh: TriangleMesh) -> np.ndarray | None:
-    """(S^3,) bool: band nodes over the cap a field puts across an open scan's holes (their nearest
-    scanned vertex lies much farther than their distance to the surface), or None for a closed scan."""
-    from scipy.spatial import cKDTree
+    """(S^3,) bool: band nodes over the cap a field puts across an open scan's holes (their
+    distance to the scanned triangles exceeds their distance to the level set by more than
+    CAP_MARGIN_CELLS), or None for a closed scan."""
+    import igl
 
     from ..extract.footprint import boundary_edge_count
 
     if boundary_edge_count(mesh.faces) == 0:
         return None
     band = narrow_band(grid, 8.0)
-    e = mesh.vertices[mesh.faces]
-    spacing = float(np.median(np.linalg.norm(e[:, 1] - e[:, 0], axis=1)))
-    d, _ = cKDTree(mesh.vertices).query(grid.positions(band.index))
+    d2, _, _ = igl.point_mesh_squared_distance(grid.positions(band.index), mesh.vertices, mesh.faces)
     phi = np.abs(grid.values.reshape(-1)[band.index])
     out = np.zeros(grid.values.size, dtype=bool)
-    out[band.index[d > phi + max(2.0 * spacing, 2.0 * grid.cell)]] = True
+    out[band.index[np.sqrt(d2) > phi + CAP_MARGIN_CELLS * grid.cell]] = True
     return out
 
 
