@@ -32,8 +32,12 @@ BAND_CELLS = 4.5
 TAPER_CELLS = 2.5
 #: Half-width of the smeared delta / Heaviside functions used for area and volume, in cells.
 SMEAR_CELLS = 1.5
-#: Re-distance the band once the surface has moved this many cells since the last time.
+#: Re-distance the band once the surface has moved this many cells since the last time, at
+#: this quantile of the nodes next to it: a few nodes racing at a crease (an open scan's rim
+#: against the cap its field puts over the hole) no longer force it every other step (the
+#: demo stone's smoothing re-distanced 39 times in 50 steps, 22 s).
 REDISTANCE_CELLS = 1.0
+REDISTANCE_QUANTILE = 0.99
 
 
 @dataclass
@@ -387,7 +391,8 @@ def curvature_flow(
         update = dt * taper(phi, h) * grad_norm * speed
         flat[band.index] = phi + update
         drift += update
-        if np.abs(drift[np.abs(phi) < 2.0 * h]).max(initial=0.0) > REDISTANCE_CELLS * h and step < steps - 1:
+        near = np.abs(drift[np.abs(phi) < 2.0 * h])
+        if len(near) and np.quantile(near, REDISTANCE_QUANTILE) > REDISTANCE_CELLS * h and step < steps - 1:
             # the surface has moved: restore distances so the band and the taper follow it
             redistance(grid)
             band = narrow_band(grid, BAND_CELLS)
