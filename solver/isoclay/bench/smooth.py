@@ -478,6 +478,12 @@ def _flat_normal_error(mesh: TriangleMesh, half, margin: float) -> float:
     return float(ang[keep].mean())
 
 
+def _box_distance(points: np.ndarray, half) -> np.ndarray:
+    """Exact signed distance to the box [-half, half] (common practice, no source)."""
+    q = np.abs(points) - np.asarray(half)
+    return np.linalg.norm(np.maximum(q, 0.0), axis=1) + np.minimum(q.max(1), 0.0)
+
+
 def sharpen_section(quick: bool) -> dict:
     """Rounded cubes (fillets 5% to 36% of the side) meshed, fitted, sharpened at default settings."""
     from ..extract import extract_mesh
@@ -507,6 +513,9 @@ def sharpen_section(quick: bool) -> dict:
                  "corner_gap_before": float(np.linalg.norm(soft.vertices - half, axis=1).min()),
                  "corner_gap_after": float(np.linalg.norm(result.mesh.vertices - half, axis=1).min()),
                  "flat_normal_error_deg": _flat_normal_error(result.mesh, half, rounding + 0.05)}
+        # grooves and bumps: the result's vertices against the exact sharp cube (deepest inside, farthest out)
+        to_sharp = _box_distance(result.mesh.vertices, half)
+        entry.update(deepest_inside_sharp=float(-to_sharp.min()), farthest_outside_sharp=float(to_sharp.max()))
         entry["distance_reduction"] = 1.0 - entry["distance_to_sharp_after"] / entry["distance_to_sharp_before"]
         entry["corner_gap_reduction"] = 1.0 - entry["corner_gap_after"] / entry["corner_gap_before"]
         try:  # pymeshlab's unsharp mask on the same mesh, as the mesh-filter reference

@@ -721,7 +721,7 @@ def sharpen_grid(grid: NodeGrid, amount: float, radius: float | None = None, sho
 
     amount : 0..1, fraction of the way from the rounded to the sharp shape
     radius : unit-box length, the roundness to undo (roundings up to FILLET_MAX times it are
-        sharpened; surfaces curved more gently than 1 / (5 radius) are sides); None = detected
+        sharpened, gentler surfaces are sides); None = detected
     """
     roundings, plan = find_roundings(grid, radius, should_stop)
     if plan is None or roundings.creases == 0:

@@ -37,8 +37,8 @@ class Config:
 
     amount : (0, 1]; 1 = all the way to where the sides meet, 0.5 = half way
     radius : (0, MAX_RADIUS] unit box, or None: the roundness to undo. Roundings up to 1.5 times it
-        are sharpened, surfaces curved more gently than 1 / (5 radius) are the sides they lie
-        between; None = detected from the field's principal curvatures (metrics
+        are sharpened, gentler surfaces are the sides they lie between (extended with their own
+        curvature); None = detected from the field's principal curvatures (metrics
         "roundness_radius_length")
     closed : an open scan comes back trimmed to its scanned footprint unless True
     keep_topology : move the input's own vertices instead of remeshing (cannot add the vertices
