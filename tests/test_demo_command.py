@@ -43,7 +43,8 @@ def test_demo_quick_end_to_end(tmp_path):
         for view in ("before", "after", "heat"):
             assert (tmp_path / "renders" / f"{prop}_{view}.png").stat().st_size > 0
         report = json.loads((tmp_path / f"{prop}_report.json").read_text())
-        assert report["watertight"]
+        # the stone is an open scan (its underside missing) and comes back open (issue 12); the rest are closed
+        assert report["watertight"] == (prop != "stone"), prop
     assert (tmp_path / "workshop_results.blend").stat().st_size > 0
     deform = json.loads((tmp_path / "hook_report.json").read_text())
     assert deform["handle_error_max_rel"] < 0.01  # quick settings: within 1% of the diagonal

@@ -7,9 +7,9 @@ import pytest
 import torch
 
 from isoclay.energies.crease_sharpen import sharpen_grid
-from isoclay.energies.curvature_flow import node_grid_of, spline_of
+from isoclay.energies.curvature_flow import node_grid_of, spline_of, unit_box_grid
 from isoclay.errors import InvalidInput
-from isoclay.field.analytic import RoundedBoxSDF, SphereSDF
+from isoclay.field.analytic import RoundedBoxSDF, SphereSDF, TorusSDF
 from isoclay.geometry import curvatures, project_to_level_set
 from isoclay.mesh import Normalization, measures
 from isoclay.tasks import sharpen
@@ -52,57 +52,110 @@ def test_probe_reads_the_analytic_bevel(beveled):
     np.testing.assert_allclose(_edge_angle(spline_of(beveled)), _analytic_rounded_angle(), atol=2.0)
 
 
-def test_sharpening_moves_edges_toward_90_degrees_and_keeps_faces_flat(beveled):
-    # A sharp box edge has face normals at 90 degrees (analytic). amount 1 must bring the probe
-    # angle to 90 +- 5 degrees, amount 0.5 part of the way (strictly between); face centres and
-    # points well inside each face keep their normal within 0.5 degree and position within 1e-4.
-    before = _edge_angle(spline_of(beveled))
-    full = beveled.copy()
-    sharpen_grid(full, 1.0, 0.06)
-    half = beveled.copy()
-    sharpen_grid(half, 0.5, 0.06)
-    after_full = _edge_angle(spline_of(full))
-    after_half = _edge_angle(spline_of(half))
-    assert abs(after_full - 90.0) < 5.0
-    assert before + 5.0 < after_half < after_full
-    field = spline_of(full)
-    face_points = np.array([[0.3, 0.0, 0.0], [0.0, 0.25, 0.0], [0.0, 0.0, 0.2], [0.3, 0.1, 0.05], [0.1, 0.0, -0.2], [-0.1, -0.25, 0.05]])
-    expected = np.array([[1, 0, 0], [0, 1, 0], [0, 0, 1], [1, 0, 0], [0, 0, -1], [0, -1, 0]], dtype=float)
-    projected, _ = project_to_level_set(field, face_points)
-    normals = curvatures(field, projected).normal
-    angles = np.degrees(np.arccos(np.clip((normals * expected).sum(1), -1, 1)))
-    assert angles.max() < 0.5
-    np.testing.assert_allclose(projected, face_points, atol=1e-4)
-
-
-@pytest.mark.parametrize("radius", [0.3, 0.1])
-def test_sharpening_a_sphere_changes_it_very_little(radius):
-    # A sphere has no crease and no flat side: sharpening must leave its radius within 1e-3
-    # (0.25%-1% of r) everywhere (bound stated here; analytic sphere).
-    grid = node_grid_of(SphereSDF(radius), 64)
-    sharpen_grid(grid, 1.0, 0.06)
-    d = np.random.default_rng(0).normal(size=(300, 3))
-    d /= np.linalg.norm(d, axis=1, keepdims=True)
-    p, _ = project_to_level_set(spline_of(grid), d * radius)
-    np.testing.assert_allclose(np.linalg.norm(p, axis=1), radius, atol=1e-3)
-
-
-def test_sharpen_task_remeshes_a_beveled_block(beveled):
-    # End to end through the task: a watertight output whose volume moves toward the sharp box's
-    # 8 hx hy hz (analytic): its gap to that volume must be under 30% of the rounded input's gap.
+def _cube_mesh():
+    """A 96-vertex cube of side 1 (the input an artist would hand over), unit box."""
     import trimesh
 
-    box = trimesh.creation.box(extents=2 * np.asarray(HALF))
     from isoclay.mesh.types import TriangleMesh
 
-    mesh = TriangleMesh(np.asarray(box.vertices, dtype=np.float64), np.asarray(box.faces, dtype=np.int64))
-    config = sharpen.Config(amount=1.0, radius=0.06, resolution=96)
-    result = sharpen.run(spline_of(beveled), mesh, config, no_progress, never_stop)
-    assert measures.is_watertight(result.mesh.faces)
-    sharp_volume = 8 * np.prod(HALF)
-    rounded_volume = measures.signed_volume(*_extract(spline_of(beveled)))
-    out_volume = measures.signed_volume(result.mesh.vertices, result.mesh.faces)
-    assert abs(out_volume - sharp_volume) < 0.3 * abs(rounded_volume - sharp_volume)
+    box = trimesh.creation.box(extents=(1.0, 1.0, 1.0)).subdivide().subdivide()
+    v, f = trimesh.remesh.subdivide(box.vertices, box.faces) if len(box.vertices) < 96 else (box.vertices, box.faces)
+    return TriangleMesh(np.asarray(v, dtype=np.float64), np.asarray(f, dtype=np.int64))
+
+
+def _face_angle_at_edge(field, inset: float) -> float:
+    """Degrees between the normals on the two faces of the cube's +x/+y edge, `inset` from it (z = 0)."""
+    a = np.array([[0.55, 0.5 - inset, 0.0]])
+    b = np.array([[0.5 - inset, 0.55, 0.0]])
+    (pa, _), (pb, _) = project_to_level_set(field, a), project_to_level_set(field, b)
+    na, nb = curvatures(field, pa).normal[0], curvatures(field, pb).normal[0]
+    return float(np.degrees(np.arccos(np.clip(na @ nb, -1.0, 1.0))))
+
+
+@pytest.mark.parametrize("rounding", [0.05, 0.2])
+def test_filleted_cube_is_sharpened_toward_the_analytic_cube(rounding):
+    # A cube of side 1 with fillets of radius r (0.05 and 0.2 of its side), the field analytic
+    # (RoundedBoxSDF), roundness detected, amount 1. Against the exact sharp cube (common practice,
+    # no source): mean distance of the result's surface (area samples) down by >= 60% (issue 12), faces meeting at
+    # 90 +- 5 degrees two cells from the edge, flat-face normal error <= 1 degree (faces 0.05 clear of
+    # the fillets), detected radius within 60% of r, corner gap (5% bevel) down by >= 60%, and the
+    # output about the input's size (a 96-vertex cube once came back with 322k vertices).
+    half = np.array([0.5, 0.5, 0.5])
+    field = RoundedBoxSDF(tuple(half), rounding)
+    mesh = _cube_mesh()
+    before = _extract_box(field, half)
+    result = sharpen.run(field, mesh, sharpen.Config(amount=1.0), no_progress, never_stop)
+    out = result.mesh
+    d_before = np.abs(_box_sdf(_area_samples(before), half)).mean()
+    d_after = np.abs(_box_sdf(_area_samples(out), half)).mean()
+    assert d_after <= 0.4 * d_before, (d_before, d_after)
+    assert abs(_face_angle_at_edge(result.field, 0.02) - 90.0) < 5.0
+    assert 0.5 * rounding <= result.metrics["roundness_radius_length"] <= 2.0 * rounding
+    assert _flat_error(out, half, rounding + 0.05) <= 1.0
+    assert measures.is_watertight(out.faces)
+    assert out.n_faces <= 1.5 * max(mesh.n_faces, 2000)
+    if rounding == 0.05:
+        gap_before = np.linalg.norm(before.vertices - half, axis=1).min()
+        gap_after = np.linalg.norm(out.vertices - half, axis=1).min()
+        assert gap_after <= 0.4 * gap_before, (gap_before, gap_after)
+
+
+def test_half_amount_goes_part_of_the_way(beveled):
+    # amount blends distances: 0.5 lands strictly between the rounded (56.6 deg probe) and the sharp edge.
+    before = _edge_angle(spline_of(beveled))
+    full, part = beveled.copy(), beveled.copy()
+    sharpen_grid(full, 1.0, 0.06)
+    sharpen_grid(part, 0.5, 0.06)
+    assert before + 2.0 < _edge_angle(spline_of(part)) < _edge_angle(spline_of(full)) - 2.0
+
+
+@pytest.mark.parametrize("shape", ["sphere", "torus"])
+def test_sphere_and_torus_have_nothing_to_sharpen(shape):
+    # No crease, no side to extend (analytic shapes): under sharpen at amount 1 with the roundness
+    # detected, and with radius 0.06 given, the surface moves by at most 0.2% of the diagonal
+    # (Hausdorff of the analytic distance over the result's vertices, against the unsharpened grid's).
+    field = SphereSDF(0.4) if shape == "sphere" else TorusSDF(0.3, 0.12)
+    lo, hi = (np.full(3, -0.45), np.full(3, 0.45)) if shape == "sphere" else (np.array([-0.45, -0.45, -0.15]), np.array([0.45, 0.45, 0.15]))
+    diagonal = float(np.linalg.norm(hi - lo))
+    from isoclay.extract import extract_mesh
+
+    for radius in (None, 0.06):
+        grid = node_grid_of(field, 96, 0.6)
+        reference = np.abs(_analytic(field, extract_mesh(spline_of(grid), lo, hi, 64).vertices)).max()
+        report = sharpen_grid(grid, 1.0, radius)
+        moved = np.abs(_analytic(field, extract_mesh(spline_of(grid), lo, hi, 64).vertices)).max()
+        assert moved - reference <= 2e-3 * diagonal, (shape, radius, report)
+
+
+def _area_samples(mesh, count=20_000):
+    from isoclay.field.supervision import sample_surface
+
+    return sample_surface(mesh, count, np.random.default_rng(0))[0]
+
+
+def _analytic(field, points):
+    with torch.no_grad():
+        return field(torch.as_tensor(points, dtype=torch.float32)).numpy()
+
+
+def _extract_box(field, half):
+    from isoclay.extract import extract_mesh
+
+    return extract_mesh(field, -half - 0.03, half + 0.03, 128)
+
+
+def _flat_error(mesh, half, margin):
+    """Mean angle (deg) between face normals and the cube's face normal, faces `margin` clear of every edge."""
+    from isoclay.tasks.base import face_normals
+
+    c = mesh.vertices[mesh.faces].mean(axis=1)
+    n = face_normals(mesh.vertices, mesh.faces)
+    inset = half[None, :] - np.abs(c)
+    axis = np.argmin(inset, axis=1)
+    keep = np.sort(inset, axis=1)[:, 1] > margin
+    ref = np.zeros_like(n)
+    ref[np.arange(len(c)), axis] = np.sign(c[np.arange(len(c)), axis])
+    return float(np.degrees(np.arccos(np.clip((n * ref).sum(1), -1.0, 1.0)))[keep].mean())
 
 
 def _extract(field):
@@ -160,6 +213,31 @@ def test_sharpened_box_lies_between_the_rounded_and_the_sharp_box(beveled):
     vertices, _ = _extract(spline_of(full))
     assert _box_sdf(vertices, HALF).max() < 0.25 * full.cell
     assert -_box_sdf(vertices, HALF, BEVEL).min() < 0.1 * full.cell
+
+
+def test_fitted_rounded_cube_sharpens_without_grooves_or_bumps():
+    # A field FITTED to a marching-cubes mesh of a cube rounded to 25% of its side (not the exact
+    # field: a fit's voxel-scale ripple and blurred curvature are what once made the crease test
+    # and the set of sides switch near the corners). Sharpened at amount 1, roundness detected,
+    # against the exact sharp cube (box SDF, common practice, no source): no point may stand
+    # out of the sharp cube by more than a quarter cell (the earlier version left bumps of half a
+    # cell at the corners), none may be left more than 0.4 cell inside it (grooves where an
+    # edge's fillet runs into a corner: 0.6 cell here, 8 cells on a 36% rounding at 128 cells),
+    # and none may cut into the rounded input by more than 0.1 cell (sharpening only adds).
+    from isoclay.extract import extract_mesh
+    from isoclay.field.fit import FitConfig, fit_field
+
+    half, rounding = np.array([0.5, 0.5, 0.5]), 0.25
+    soft = extract_mesh(RoundedBoxSDF(tuple(half), rounding), -half - 0.03, half + 0.03, 64)
+    fitted = fit_field(soft, FitConfig(resolution=96)).field
+    grid = unit_box_grid(fitted, 96)
+    report = sharpen_grid(grid, 1.0)
+    assert report.roundings.creases > 0
+    out = extract_mesh(spline_of(grid), -half - 0.05, half + 0.05, 96)
+    to_sharp = _box_sdf(out.vertices, half)
+    assert to_sharp.max() < 0.25 * grid.cell, to_sharp.max()
+    assert -to_sharp.min() < 0.4 * grid.cell, -to_sharp.min()
+    assert -_box_sdf(out.vertices, half, rounding).min() < 0.1 * grid.cell
 
 
 def test_fully_rounded_slab_front_is_not_pushed_out():
@@ -233,7 +311,12 @@ def test_sharpening_does_not_amplify_voxel_scale_ripples(beveled):
         ({"amount": "lots"}, "out of range"),
         ({"amount": 0.5, "radius": -1}, "positive length"),
         ({"amount": 0.5, "radius": 30}, "too large"),
+        ({"amount": 0.5, "radius": float("nan")}, "positive length"),
+        ({"amount": 1e300}, "out of range"),
         ({"amount": 0.5, "keep_topology": "no"}, "true or false"),
+        ({"amount": 0.5, "closed": 1}, "true or false"),
+        ({"amount": 0.5, "resolution": 8}, "out of range"),
+        ({"amount": 0.5, "resolution": 10**12}, "out of range"),
         ({"amount": 0.5, "strength": 1}, "unknown parameter"),
     ],
 )
@@ -241,13 +324,17 @@ def test_bad_parameters_are_refused_with_one_line(params, words):
     mm = Normalization((0.0, 0.0, 0.0), 1.0 / 40.0)
     with pytest.raises(InvalidInput) as err:
         sharpen.Config.from_params(params, mm)
-    assert words in str(err.value) and "\n" not in str(err.value)
+    message = str(err.value)
+    assert words in message and "\n" not in message
+    assert "e+" not in message and len(message) < 200  # never an absurd number echoed back
 
 
 def test_radius_is_a_length_in_the_mesh_units():
     mm = Normalization((0.0, 0.0, 0.0), 1.0 / 40.0)
     config = sharpen.Config.from_params({"amount": 0.7, "radius": 2.0}, mm)
     np.testing.assert_allclose([config.amount, config.radius], [0.7, 0.05])
+    default = sharpen.Config.from_params({"amount": 0.7}, mm)
+    assert default.radius is None and default.resolution is None and not default.closed
 
 
 def test_cli_sharpen_bad_amount_is_one_line_exit_2(tmp_path, capsys):

@@ -21,12 +21,15 @@ def add_input_output(parser, out_help: str = "result mesh (.ply, .obj, .stl, .gl
 
 
 def add_surface_options(parser, what: str) -> None:
-    """--keep-topology and --resolution, shared by the field edits that output a surface."""
+    """--keep-topology, --resolution and --closed, shared by the field edits that output a surface."""
     parser.add_argument("--keep-topology", action="store_true",
                         help=f"move the input's own vertices onto the {what} surface (keeps UVs); "
                              "per-vertex 'moved' distance goes into the PLY")
-    parser.add_argument("--resolution", type=int, default=256,
-                        help="marching-cubes cells along the longest side (default 256)")
+    parser.add_argument("--resolution", type=int, default=None,
+                        help="marching-cubes cells along the longest side (default: follows the input's edge "
+                             "lengths, then decimated toward its face count)")
+    parser.add_argument("--closed", action="store_true",
+                        help="return a closed surface even for an open scan (default: open where the scan was open)")
 
 
 def add_fit_options(parser) -> None:

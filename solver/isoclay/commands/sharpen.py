@@ -13,7 +13,8 @@ def add_parser(sub):
     p.add_argument("--amount", type=float, required=True,
                    help="0..1: fraction of the way from the rounded to the fully sharp edge")
     p.add_argument("--radius", type=float, default=None,
-                   help="largest rounding to sharpen, in the mesh's units (default: 1/20 of the object's longest side)")
+                   help="roundness to undo: the radius of the rounded edges, in the mesh's units "
+                        "(default: detected from the shape)")
     add_surface_options(p, "sharpened")
     add_edit_options(p)
     return p
@@ -22,7 +23,9 @@ def add_parser(sub):
 def run(args, ui) -> int:
     out = check_output_path(args.out)
     fit_config_from(args)  # refuse bad fit options before reading the mesh
-    params = {"amount": args.amount, "keep_topology": args.keep_topology, "resolution": args.resolution}
+    params = {"amount": args.amount, "keep_topology": args.keep_topology, "closed": args.closed}
+    if args.resolution is not None:
+        params["resolution"] = args.resolution
     if args.radius is not None:
         params["radius"] = args.radius
     prepared = load_input(args.mesh, ui)

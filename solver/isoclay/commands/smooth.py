@@ -14,9 +14,11 @@ def add_parser(sub):
                    help="size of the bumps to remove, in the mesh's units (e.g. 2 for 2 mm bumps on a model in mm)")
     p.add_argument("--no-preserve-volume", dest="preserve_volume", action="store_false",
                    help="let the flow shrink the object as plain curvature flow does")
-    p.add_argument("--crisp-creases", action="store_true",
-                   help="give the remeshed result back the sharp creases the field's grid rounds off: for "
-                        "hard-surface props (on lumpy organic scans it leaves needle-shaped triangles)")
+    p.add_argument("--creases", choices=("auto", "crisp", "soft"), default="auto",
+                   help="crease treatment: auto (default: decided from the shape; hard-surface creases come back "
+                        "crisp, organic scans stay smooth), crisp (always), soft (never)")
+    p.add_argument("--crisp-creases", dest="creases", action="store_const", const="crisp",
+                   help="same as --creases crisp (older spelling)")
     add_surface_options(p, "smoothed")
     add_edit_options(p)
     return p
@@ -25,8 +27,10 @@ def add_parser(sub):
 def run(args, ui) -> int:
     out = check_output_path(args.out)
     fit_config_from(args)  # refuse bad fit options before reading the mesh
-    params = {"strength": args.strength, "preserve_volume": args.preserve_volume,
-              "keep_topology": args.keep_topology, "resolution": args.resolution, "crisp_creases": args.crisp_creases}
+    params = {"strength": args.strength, "preserve_volume": args.preserve_volume, "creases": args.creases,
+              "keep_topology": args.keep_topology, "closed": args.closed}
+    if args.resolution is not None:
+        params["resolution"] = args.resolution
     prepared = load_input(args.mesh, ui)
     outcome = run_task(args, ui, "smooth", params, prepared)
     write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology)

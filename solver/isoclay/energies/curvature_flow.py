@@ -32,8 +32,12 @@ BAND_CELLS = 4.5
 TAPER_CELLS = 2.5
 #: Half-width of the smeared delta / Heaviside functions used for area and volume, in cells.
 SMEAR_CELLS = 1.5
-#: Re-distance the band once the surface has moved this many cells since the last time.
+#: Re-distance the band once the surface has moved this many cells since the last time, at
+#: this quantile of the nodes next to it: a few nodes racing at a crease (an open scan's rim
+#: against the cap its field puts over the hole) no longer force it every other step (the
+#: demo stone's smoothing re-distanced 39 times in 50 steps, 22 s).
 REDISTANCE_CELLS = 1.0
+REDISTANCE_QUANTILE = 0.99
 
 
 @dataclass
@@ -74,25 +78,30 @@ class NodeGrid:
 
 
 def node_grid_of(field, resolution: int = 128, half_extent: float | None = None) -> NodeGrid:
-    """Node values of any SDFField on a SplineSDF grid.
+    """Node values of any SDFField on a grid of `resolution` cells spanning [-half_extent, half_extent]^3.
 
-    A SplineSDF gives its exact node values from its coefficients (B-spline at integer
-    offsets: (c[k-1] + 4 c[k] + c[k+1]) / 6 per axis, mirror at the ends, the inverse of
-    spline_from_node_values); a SparseSplineSDF is evaluated at the nodes of a grid with the
-    given resolution through its separable coarse spline plus its fine blocks; any other field is
-    sampled node by node.
+    half_extent : unit-box length, default the spline grid's DEFAULT_HALF_EXTENT (0.65)
+    A SplineSDF with the same resolution and extent gives its exact node values from its
+    coefficients (B-spline at integer offsets: (c[k-1] + 4 c[k] + c[k+1]) / 6 per axis, mirror
+    at the ends, the inverse of spline_from_node_values); another SplineSDF is read axis by axis
+    (separable); a SparseSplineSDF through its separable coarse spline plus its fine blocks; any
+    other field (or grid) is sampled at the nodes, value-only (geometry.values uses a field's
+    fast_values when it has one). Smooth and sharpen choose their own working resolution and read
+    fields only through here.
     """
     from ..field.spline import DEFAULT_HALF_EXTENT, SplineSDF
 
-    if isinstance(field, SplineSDF):
+    e = DEFAULT_HALF_EXTENT if half_extent is None else float(half_extent)
+    if isinstance(field, SplineSDF) and field.resolution == resolution and abs(field.half_extent - e) < 1e-12:
         c = field.coefficients.detach().double().cpu().numpy()
         for axis in range(3):
             c = _node_stencil(c, axis)
         return NodeGrid(c, field.half_extent)
+    if isinstance(field, SplineSDF):
+        return _spline_on_grid(field, resolution, e)
     from ..field.sparse import SparseSplineSDF, grid_values
     from ..geometry import values
 
-    e = DEFAULT_HALF_EXTENT if half_extent is None else float(half_extent)
     if isinstance(field, SparseSplineSDF):  # separable coarse part, fine residual only near its blocks
         grid = NodeGrid(np.zeros((1, 1, 1)), e)
         grid.values = grid_values(field, -e + 2.0 * e / resolution * (np.arange(resolution + 3) - 1.0))
@@ -100,12 +109,50 @@ def node_grid_of(field, resolution: int = 128, half_extent: float | None = None)
     grid = NodeGrid(np.zeros((resolution + 3,) * 3), e)
     a = grid.axis()
     out = np.empty(grid.values.shape)
-    for i in range(grid.side):  # one slab at a time bounds memory for large grids
-        yz = np.stack(np.meshgrid(a, a, indexing="ij"), axis=-1).reshape(-1, 2)
-        pts = np.column_stack([np.full(len(yz), a[i]), yz])
-        out[i] = values(field, pts).reshape(grid.side, grid.side)
+    yz = np.stack(np.meshgrid(a, a, indexing="ij"), axis=-1).reshape(-1, 2)
+    slabs = max(1, 2_000_000 // len(yz))  # a few slabs per query bounds memory for large grids
+    for i in range(0, grid.side, slabs):
+        xs = a[i : i + slabs]
+        pts = np.column_stack([np.repeat(xs, len(yz)), np.tile(yz, (len(xs), 1))])
+        out[i : i + len(xs)] = values(field, pts).reshape(len(xs), grid.side, grid.side)
     grid.values = out
     return grid
+
+
+def _spline_on_grid(field, resolution: int, half_extent: float) -> NodeGrid:
+    """A SplineSDF's values at the nodes of another grid, axis by axis: the nodes form a tensor
+    product, so the 4 x 4 x 4 B-spline sum factors into three sparse 1D passes (the same numbers
+    as SplineSDF.forward; a 195^3 working grid from a 128 spline in 0.4 s against 3.8 s pointwise)."""
+    import scipy.sparse
+    import torch
+
+    from ..field.spline import cubic_bspline_weights
+
+    grid = NodeGrid(np.zeros((resolution + 3,) * 3), half_extent)
+    a = grid.axis()
+    e, cell, side = field.half_extent, field.cell, field.resolution + 3
+    inside = np.clip(a, -e, e)
+    u = (inside + e) / cell
+    base = np.clip(np.floor(u), 0, field.resolution - 1)
+    w = cubic_bspline_weights(torch.from_numpy(u - base)).numpy()  # (n, 4)
+    rows = np.repeat(np.arange(len(a)), 4)
+    cols = (base[:, None].astype(np.int64) + np.arange(4)[None, :]).reshape(-1)
+    basis = scipy.sparse.csr_matrix((w.reshape(-1), (rows, cols)), shape=(len(a), side))
+    c = field.coefficients.detach().double().cpu().numpy()
+    for _ in range(3):  # each pass contracts the leading axis and moves it to the back
+        n0 = c.shape[0]
+        c = (basis @ c.reshape(n0, -1)).reshape((len(a),) + c.shape[1:])
+        c = np.moveaxis(c, 0, -1)
+    outside = a - inside
+    o2 = outside * outside
+    grid.values = c + np.sqrt(o2[:, None, None] + o2[None, :, None] + o2[None, None, :] + 1e-12) - 1e-6
+    return grid
+
+
+def unit_box_grid(field, resolution: int, margin_cells: float = 8.0) -> NodeGrid:
+    """node_grid_of over the unit box [-0.5, 0.5]^3 plus margin_cells cells each side (the room
+    the bands, stencils and blurs of a flow or a sharpening need), `resolution` cells across."""
+    return node_grid_of(field, resolution, 0.5 / (1.0 - 2.0 * margin_cells / resolution))
 
 
 def _node_stencil(c: np.ndarray, axis: int) -> np.ndarray:
@@ -214,8 +261,12 @@ def smeared_inside(phi: np.ndarray, cell: float) -> np.ndarray:
 
 
 def enclosed_volume(grid: NodeGrid) -> float:
-    """Volume of {phi < 0} from the smeared Heaviside on the node grid (unit-box cubic units)."""
-    return float(smeared_inside(grid.values, grid.cell).sum() * grid.cell**3)
+    """Volume of {phi < 0} from the smeared Heaviside on the node grid (unit-box cubic units).
+    Nodes beyond the smear width count 0 or 1 without evaluating the ramp (10x faster on a 195^3 grid)."""
+    v = grid.values
+    eps = SMEAR_CELLS * grid.cell
+    near = v[np.abs(v) < eps]
+    return float((np.count_nonzero(v <= -eps) + smeared_inside(near, grid.cell).sum()) * grid.cell**3)
 
 
 def level_set_area(grid: NodeGrid, band: Band) -> float:
@@ -347,7 +398,8 @@ def curvature_flow(
         update = dt * taper(phi, h) * grad_norm * speed
         flat[band.index] = phi + update
         drift += update
-        if np.abs(drift[np.abs(phi) < 2.0 * h]).max(initial=0.0) > REDISTANCE_CELLS * h and step < steps - 1:
+        near = np.abs(drift[np.abs(phi) < 2.0 * h])
+        if len(near) and np.quantile(near, REDISTANCE_QUANTILE) > REDISTANCE_CELLS * h and step < steps - 1:
             # the surface has moved: restore distances so the band and the taper follow it
             redistance(grid)
             band = narrow_band(grid, BAND_CELLS)

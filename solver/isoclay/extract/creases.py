@@ -15,7 +15,8 @@ centred on the face, so no patch stands out (the acceptance ratio below). Lumpy 
 surfaces are another matter: their lumps offer patches of unequal consistency, and the plane
 fit leaves needle-shaped triangles there (measured on the demo's smoothed stone: 1,726 faces
 turned more than 40 degrees from one of their corners' normals, against none before). That is why
-the smooth task runs this only when asked (hard-surface props).
+the smooth task's default ("auto") asks for flat sides: a crease is restored only where the data
+shows two planar sides meeting, which a lumpy scan does not have.
 """
 
 from __future__ import annotations
@@ -32,6 +33,15 @@ from ..callbacks import check_stop, never_stop
 MIN_SPREAD_DEGREES = 3.0
 #: ...and the best patch containing it must spread them less than this fraction of that.
 ACCEPT_RATIO = 0.5
+#: With flat_sides_only (the smooth task's "auto" creases) the guiding patch must be flat: its
+#: normals' spread below that of a 2.5-degree mean angle. The sides of a hard-surface crease are
+#: planes; the lumps of an organic scan, or a sphere of radius 0.4 seen through a patch of 0.03
+#: (spread of a 2.1-degree mean angle), are not, and are left alone (no needle triangles).
+FLAT_SIDE_DEGREES = 1.5
+#: ...or far flatter than the face's own patch (a noisy hard-surface side after smoothing keeps a
+#: degree or two of scatter, but next to a crease it is still several times flatter than the
+#: strip; on a sphere or a lump no patch is).
+FLAT_SIDE_RATIO = 0.2
 #: Conjugate-gradient iterations of the vertex fit to the target planes.
 PLANE_FIT_ITERATIONS = 60
 #: Patch centres sit in cubes of this fraction of the patch radius.
@@ -78,7 +88,7 @@ def _buckets(c: np.ndarray, n: np.ndarray, a: np.ndarray, size: float):
     return bucket, cube, centre / np.maximum(area, 1e-300)[:, None], normal_sum, area
 
 
-def _guides(c: np.ndarray, n: np.ndarray, a: np.ndarray, radius: float):
+def _guides(c: np.ndarray, n: np.ndarray, a: np.ndarray, radius: float, flat_sides_only: bool = False):
     """Per face: (guide normal, accepted).
 
     Faces are grouped in cubes of side radius / 4. A patch is the faces of the cubes whose
@@ -125,6 +135,8 @@ def _guides(c: np.ndarray, n: np.ndarray, a: np.ndarray, radius: float):
         guide_spread[better] = best_spread[other[better]]
     own = spread[bucket]
     accepted = (own > 1.0 - np.cos(np.radians(MIN_SPREAD_DEGREES))) & (guide_spread < ACCEPT_RATIO * own)
+    if flat_sides_only:
+        accepted &= (guide_spread < 1.0 - np.cos(np.radians(FLAT_SIDE_DEGREES))) | (guide_spread < FLAT_SIDE_RATIO * own)
     return guide, accepted
 
 
@@ -188,16 +200,19 @@ def _without_folds(v: np.ndarray, d: np.ndarray, faces: np.ndarray, target: np.n
         halvings += 1
 
 
-def restore_creases(mesh: TriangleMesh, radius: float, should_stop=never_stop) -> tuple[TriangleMesh, CreaseReport]:
+def restore_creases(mesh: TriangleMesh, radius: float, should_stop=never_stop, flat_sides_only: bool = False
+                    ) -> tuple[TriangleMesh, CreaseReport]:
     """Sharpen rounded creases of a marching-cubes mesh; smooth regions stay as they are.
 
     radius : patch radius (mesh units), about 1.5 times the width of the rounding, i.e. of
         the field's grid cell
+    flat_sides_only : restore only creases whose sides are flat (FLAT_SIDE_DEGREES): what the
+        data says is a hard-surface crease; lumpy organic regions are left alone
     """
     v = mesh.vertices.astype(np.float64).copy()
     f = mesh.faces
     n, a = _normals_areas(v, f)
-    guide, accepted = _guides(v[f].mean(axis=1), n, a, radius)
+    guide, accepted = _guides(v[f].mean(axis=1), n, a, radius, flat_sides_only)
     guided = np.flatnonzero(accepted)
     if not len(guided):
         return mesh, CreaseReport(0, 0, 0.0)

@@ -1,11 +1,14 @@
 """Smooth: remove bumps smaller than a given size from the fitted field, keeping creases and volume.
 
-Method (measured in `isoclay bench`, section smooth): the field's node values on its spline grid
-are filtered in two rounds; each round computes feature-preserving target normals by bilateral
-filtering at the requested scale (energies.feature_normals), then runs the level-set flow toward
-them, phi_t = |grad phi| (kappa - div N) (energies.curvature_flow; Tasdizen et al. 2002), with
-the mean speed removed so the volume stays put. Noise has normals scattered at small scale and
-is averaged away; a crease has two consistent families of normals and stays.
+Method (measured in `isoclay bench`, section smooth): the field is read onto a working grid whose
+cell is a quarter of the strength (so the cost is about the same at every strength), and its
+node values are filtered in two rounds; each round computes feature-preserving target normals by
+a joint bilateral filter at the requested scale, guided by the normals of a blurred copy
+(energies.feature_normals), then runs the level-set flow toward them,
+phi_t = |grad phi| (kappa - div N) (energies.curvature_flow; Tasdizen et al. 2002), with the mean
+speed removed so the volume stays put. Noise has normals scattered at small scale and is
+averaged away; a crease has two consistent families of normals and stays. The remeshed result
+gets its creases back where the data shows flat sides meeting (creases "auto").
 """
 
 from __future__ import annotations
@@ -15,94 +18,160 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..energies.curvature_flow import curvature_flow, enclosed_volume, node_grid_of, spline_of
+from ..energies.curvature_flow import curvature_flow, enclosed_volume, narrow_band, spline_of, unit_box_grid
 from ..energies.feature_normals import bilateral_normals
 from ..errors import InvalidInput
-from ..mesh import measures
 from ..mesh.types import TriangleMesh
-from .base import TaskResult, check_param_names, check_stop, face_normals, is_finite_number
+from .base import TaskResult, check_param_names, check_stop
+from .result_surface import (  # noqa: F401 (project_vertices, MAX_PROJECTION_MOVE: part of this task's interface)
+    MAX_PROJECTION_MOVE,
+    SurfaceOptions,
+    optional_resolution,
+    positive_length,
+    project_vertices,
+    require_bool,
+    surface_of,
+)
+from .result_surface import shown as _shown
 
 #: Largest strength accepted, as a fraction of the object's longest side: beyond it the whole
 #: object is a "bump" and smoothing would melt it.
 MAX_STRENGTH_REL = 0.25
-#: Flow time per round in units of strength^2: ripples of wavelength `strength` decay by
-#: exp(-(2 pi)^2 * 0.08) ~ 1/24 per round (common practice, no source).
-FLOW_TIME_PER_STRENGTH2 = 0.08
-#: Keep-topology output is refused when a vertex would move farther than this (object
-#: longest side = 1): projection that far could jump across thin parts.
-MAX_PROJECTION_MOVE = 0.05
-
-
-def _require_bool(task: str, name: str, value) -> bool:
-    if not isinstance(value, bool):
-        raise InvalidInput(f"{task}: {name} must be true or false, got {value!r}")
-    return value
-
-
-def _require_int(task: str, name: str, value, lo: int, hi: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, int) or not lo <= value <= hi:
-        raise InvalidInput(f"{task}: {name} {value!r} out of range: use a whole number from {lo} to {hi}")
-    return value
+#: Flow time per round (organic surfaces) in units of strength^2. What is left of ripples after
+#: both rounds, by wavelength in strengths (a bump is half a wave; measured on a rippled slab of
+#: amplitude 0.01 through smooth_grid): 2: 0, 3: 0.05, 4: 0.24, 6: 0.66. The issue's noisy sphere
+#: (white noise at the vertex spacing, strength twice the spacing) asks for the residual <= 0.25
+#: of the input's, which white noise allows only when little shorter than 3.7 strengths survives
+#: (its 144 modes up to that wavelength alone hold 0.24 of it on the 2562-vertex sphere): at 0.25
+#: (wavelength 4 kept 0.35) the sphere kept 0.21-0.24 over four noise seeds, at 0.4 with the
+#: wider guide 0.19-0.22.
+FLOW_TIME_PER_STRENGTH2 = 0.4
+#: Working grid cell = strength / CELLS_PER_STRENGTH, within WORKING_RESOLUTION cells across the
+#: unit box: 3 cells per strength resolves a bump of that size and keeps the filter at 3 passes
+#: and the flow at 5 steps a round at any strength (4 cells: 5 passes, 9 steps, 2.4x the time for
+#: the same residual on the noisy sphere, measured); 192 cells at most (7M nodes, the dense grid
+#: two cores afford), 48 at least.
+CELLS_PER_STRENGTH = 3.0
+WORKING_RESOLUTION = (48, 192)
+#: Spatial standard deviation of the normal filter, in strengths: a bump of the strength's size
+#: (a half-wave) keeps exp(-2 pi^2 0.7^2 / 4) = 9% of its tilt, one twice that size 55%
+#: (Gaussian attenuation; at 0.5 the noisy sphere kept 25% of its ripple, measured).
+FILTER_SHARE = 0.7
+#: The guide of the bilateral filter (organic surfaces) is blurred by this share of the strength
+#: (2 cells at 3 cells per strength): noise gone, broad forms kept (0.5 left the noisy sphere
+#: 0.01-0.02 more of its ripple, see FLOW_TIME_PER_STRENGTH2).
+GUIDE_SHARE = 0.7
+#: Crease treatments: "auto" decides from the data, "crisp" treats the shape as a hard surface
+#: (creases restored wherever a rounded strip shows), "soft" as organic (never restored).
+CREASE_MODES = ("auto", "crisp", "soft")
+#: "auto": a shape is a hard surface when at least this share of its area is flat (radius of
+#: curvature above the object's longest side, read across scales: energies.crease_sharpen.
+#: flat_share, through a 4-cell blur). Measured: bench chamfered block with 0.3% noise 0.25, noisy
+#: sphere 0.003, demo stone 0.08, demo clay anvil 0.007. A hard surface keeps the plain bilateral filter (its creases protect themselves,
+#: feature-region normal error 13.9 against 17.9 deg with the guide) and the shorter flow, and
+#: gets its creases restored; an organic one takes the guided filter (no orange peel: residual
+#: ripple 0.27 against 0.31 of the input's without it) and the longer flow.
+HARD_SURFACE_FLAT_SHARE = 0.15
+#: Flow time per round for hard surfaces, in strength^2 (the earlier default: creases rounded less).
+FLOW_TIME_HARD = 0.08
 
 
 @dataclass(frozen=True)
 class Config:
-    """strength : unit-box length; bumps smaller than this are removed (the object's longest side is 1)
+    """Smooth settings (unit-box lengths: the object's longest side is 1).
+
+    strength : (0, MAX_STRENGTH_REL] unit box; bumps smaller than this disappear, larger forms stay
+    creases : "auto" (default: creases between flat sides come back crisp, organic surfaces are
+        left smooth), "crisp" (restore every rounded strip), "soft" (no restoration)
     preserve_volume : keep the enclosed volume (default) or let the flow shrink convex parts
+    closed : an open scan comes back trimmed to its scanned footprint unless True
     keep_topology : move the input's own vertices onto the new surface instead of remeshing
-    resolution : marching-cubes cells along the longest side for the remeshed output
-    crisp_creases : after remeshing, put back the sharpness the field's grid rounds off creases
-        (extract.creases): for hard-surface props; off by default because it leaves needle
-        triangles on lumpy organic surfaces
-    rounds : filter-then-flow rounds
-    range_sigma : normal-similarity width of the bilateral filter (smaller keeps more creases)
+    resolution : 16..1024 marching-cubes cells along the longest side, or None (follows the
+        input's edge lengths and the working grid, then decimated toward the input's face count)
+    rounds : filter-then-flow rounds (engine setting, 2)
+    range_sigma : normal-similarity width of the bilateral filter (engine setting, 0.15)
     """
 
     strength: float
+    creases: str = "auto"
     preserve_volume: bool = True
+    closed: bool = False
     keep_topology: bool = False
-    resolution: int = 256
-    crisp_creases: bool = False
+    resolution: int | None = None
     rounds: int = 2
     range_sigma: float = 0.15
 
-    KNOWN = ("strength", "preserve_volume", "keep_topology", "resolution", "crisp_creases")
+    KNOWN = ("strength", "creases", "crisp_creases", "preserve_volume", "closed", "keep_topology", "resolution")
 
     @classmethod
     def from_params(cls, params: dict, normalization=None) -> "Config":
-        """params in the mesh's own units: strength (length), preserve_volume, keep_topology, resolution, crisp_creases."""
+        """params in the mesh's own units: strength (length), creases, preserve_volume, closed, keep_topology,
+        resolution; the older crisp_creases (true = "crisp") is still accepted."""
         check_param_names("smooth", params, cls.KNOWN, '{"strength": 0.01}')
         if "strength" not in params:
             raise InvalidInput("smooth: strength is missing: give the size of the bumps to remove, in the mesh's units")
-        s = params["strength"]
-        if not is_finite_number(s) or s <= 0:
-            raise InvalidInput(f"smooth: strength {s!r} must be a positive length in the mesh's units (size of the bumps to remove)")
-        unit = normalization.length_to_unit(s) if normalization is not None else float(s)
+        s = positive_length("smooth", "strength", params["strength"], "size of the bumps to remove")
+        unit = normalization.length_to_unit(s) if normalization is not None else s
         if unit > MAX_STRENGTH_REL:
             size = normalization.length_from_unit(1.0) if normalization is not None else 1.0
             raise InvalidInput(
-                f"smooth: strength {s:g} is too large for an object {size:.4g} long (limit {MAX_STRENGTH_REL * size:.4g}): "
+                f"smooth: strength {_shown(s)} is too large for an object {size:.4g} long (at most {MAX_STRENGTH_REL * size:.4g}): "
                 "give the size of the bumps to remove, not of the object"
             )
+        creases = params.get("creases")
+        crisp = params.get("crisp_creases")
+        if crisp is not None:
+            require_bool("smooth", "crisp_creases", crisp)
+            if creases is not None and crisp and creases != "crisp":
+                raise InvalidInput(f"smooth: crisp_creases true contradicts creases {creases!r}: give only creases")
+        if creases is None:
+            creases = "crisp" if crisp else "auto"
+        if creases not in CREASE_MODES:
+            shown = repr(creases) if isinstance(creases, str) and len(creases) < 20 else "given"
+            raise InvalidInput(f"smooth: creases {shown} unknown: use auto, crisp or soft")
         return cls(
             strength=float(unit),
-            preserve_volume=_require_bool("smooth", "preserve_volume", params.get("preserve_volume", True)),
-            keep_topology=_require_bool("smooth", "keep_topology", params.get("keep_topology", False)),
-            resolution=_require_int("smooth", "resolution", params.get("resolution", cls.resolution), 16, 1024),
-            crisp_creases=_require_bool("smooth", "crisp_creases", params.get("crisp_creases", False)),
+            creases=creases,
+            preserve_volume=require_bool("smooth", "preserve_volume", params.get("preserve_volume", True)),
+            closed=require_bool("smooth", "closed", params.get("closed", False)),
+            keep_topology=require_bool("smooth", "keep_topology", params.get("keep_topology", False)),
+            resolution=optional_resolution("smooth", params),
         )
 
 
-def smooth_grid(grid, config: Config, progress, should_stop) -> dict:
-    """Run the rounds of filtering and flow on a NodeGrid in place; returns figures."""
+def working_resolution(strength: float) -> int:
+    """Cells across the unit box (plus margins) for a strength (unit box)."""
+    lo, hi = WORKING_RESOLUTION
+    return int(np.clip(round(CELLS_PER_STRENGTH / strength) + 16, lo, hi))
+
+
+def hard_surface(grid, config: Config) -> bool:
+    """Whether to treat the shape as a hard surface: from the creases setting, or ("auto") from
+    the data (HARD_SURFACE_FLAT_SHARE)."""
+    if config.creases != "auto":
+        return config.creases == "crisp"
+    from ..energies.crease_sharpen import flat_share
+
+    return flat_share(grid) >= HARD_SURFACE_FLAT_SHARE
+
+
+def smooth_grid(grid, config: Config, progress, should_stop, excluded=None, hard: bool = False) -> dict:
+    """Run the rounds of filtering and flow on a NodeGrid in place; returns figures.
+
+    excluded : (S^3,) bool or None, nodes that stay as they are (an open scan's cap)
+    hard : hard-surface settings (plain bilateral filter, shorter flow) instead of organic ones
+    """
     figures = {"passes": 0, "steps": 0}
+    guide = 0.0 if hard else GUIDE_SHARE * config.strength / grid.cell
+    flow_time = FLOW_TIME_HARD if hard else FLOW_TIME_PER_STRENGTH2
     for r in range(config.rounds):
         check_stop(should_stop, "smooth")
-        target = bilateral_normals(grid, config.strength, config.range_sigma, should_stop=should_stop)
+        target = bilateral_normals(grid, 2.0 * FILTER_SHARE * config.strength, config.range_sigma, should_stop=should_stop,
+                                   guide_cells=guide, excluded=excluded)
         figures["passes"] += target.passes
         report = curvature_flow(
             grid,
-            FLOW_TIME_PER_STRENGTH2 * config.strength**2,
+            flow_time * config.strength**2,
             config.preserve_volume,
             target.normals,
             progress=lambda f, r=r: progress("smooth", (r + f) / config.rounds, {"round": r + 1}),
@@ -112,106 +181,53 @@ def smooth_grid(grid, config: Config, progress, should_stop) -> dict:
     return figures
 
 
+#: Band nodes over an open scan's cap: their distance to the scanned triangles exceeds their
+#: field value by more than this many working cells. Held still and kept out of the normal
+#: filter, they also hold the crease the fit leaves at the rim. Measured on the noisy sphere cut
+#: at z = -0.25 (strength twice the spacing): mean normal error within 0.1 of the rim 9.3 deg at
+#: 0.5 cell (4.6 x the interior's), 10.1 at 1 cell, 11.9 with the earlier test (nearest vertex,
+#: two spacings), 10.3 at 0.1 cell (the fit's own error starts to count as cap); 9.8 (4.7 x)
+#: with the flow's re-distancing at its 99% quantile (curvature_flow.REDISTANCE_QUANTILE).
+CAP_MARGIN_CELLS = 0.5
+
+
+def cap_nodes(grid, mesh: TriangleMesh) -> np.ndarray | None:
+    """(S^3,) bool: band nodes over the cap a field puts across an open scan's holes (their
+    distance to the scanned triangles exceeds their distance to the level set by more than
+    CAP_MARGIN_CELLS), or None for a closed scan."""
+    import igl
+
+    from ..extract.footprint import boundary_edge_count
+
+    if boundary_edge_count(mesh.faces) == 0:
+        return None
+    band = narrow_band(grid, 8.0)
+    d2, _, _ = igl.point_mesh_squared_distance(grid.positions(band.index), mesh.vertices, mesh.faces)
+    phi = np.abs(grid.values.reshape(-1)[band.index])
+    out = np.zeros(grid.values.size, dtype=bool)
+    out[band.index[np.sqrt(d2) > phi + CAP_MARGIN_CELLS * grid.cell]] = True
+    return out
+
+
 def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> TaskResult:
     """Smooth the field and return the new field with a remeshed or vertex-projected surface (unit box)."""
     t0 = time.perf_counter()
-    grid = node_grid_of(field)
+    grid = unit_box_grid(field, working_resolution(config.strength))
     volume_before = enclosed_volume(grid)
-    figures = smooth_grid(grid, config, progress, should_stop)
+    excluded = cap_nodes(grid, mesh)
+    hard = hard_surface(grid, config)
+    figures = smooth_grid(grid, config, progress, should_stop, excluded, hard)
     new_field = spline_of(grid)
     seconds = {"smooth": time.perf_counter() - t0}
-    crease_radius = CREASE_PATCH_CELLS * grid.cell if config.crisp_creases else None
-    out, more = surface_of(new_field, mesh, config.keep_topology, config.resolution, progress, should_stop, seconds, "smooth",
-                           crease_radius)
+    options = SurfaceOptions(config.keep_topology, config.resolution, config.closed, "crisp" if hard else "soft", grid.cell)
+    out, more = surface_of(new_field, mesh, options, progress, should_stop, seconds, "smooth")
     metrics = {
         "field_volume_change": enclosed_volume(grid) / max(volume_before, 1e-300) - 1.0,
         "flow_steps": float(figures["steps"]),
         "filter_passes": float(figures["passes"]),
         "grid_cell_length": grid.cell,
+        "hard_surface": float(hard),
         "strength_in_grid_cells": config.strength / grid.cell,
         **more,
     }
     return TaskResult(out, new_field, metrics, seconds)
-
-
-#: Patch radius of the crease restoration, in field grid cells: the rounding it undoes is one
-#: to two cells wide (measured on the bench's chamfered block at 0.4% noise: feature-region
-#: normal error 9.7 -> 4.6 deg at 3.5 cells, 5.0 at 3, 5.9 at 2; smooth tori untouched at all three).
-CREASE_PATCH_CELLS = 3.5
-
-
-def surface_of(new_field, mesh: TriangleMesh, keep_topology: bool, resolution: int, progress, should_stop, seconds: dict, task: str,
-               crease_radius: float | None = None):
-    """The output surface: the input's vertices projected onto the new level set, or a new mesh.
-
-    crease_radius : when given, a new mesh gets its creases restored (extract.creases) with
-        patches of this radius (unit box); the metrics then carry crease_faces and
-        crease_largest_move.
-    Returns (mesh, metrics). Keep-topology meshes carry per-vertex "moved" (unit-box lengths).
-    """
-    t1 = time.perf_counter()
-    check_stop(should_stop, "extract")
-    if keep_topology:
-        out = project_vertices(new_field, mesh, task)
-        moved = out.vertex_values["moved"]
-        more = {"moved_max": float(moved.max()), "moved_mean": float(moved.mean())}
-        seconds["project"] = time.perf_counter() - t1
-    else:
-        from ..extract import bounds_of, extract_mesh
-
-        lo, hi = bounds_of(mesh.vertices, margin=0.05)
-        out = extract_mesh(new_field, lo, hi, resolution, progress, should_stop)
-        more = {}
-        seconds["extract"] = time.perf_counter() - t1
-        if crease_radius is not None:
-            from ..extract.creases import restore_creases
-
-            t2 = time.perf_counter()
-            progress("creases", 0.0, {})
-            out, report = restore_creases(out, crease_radius, should_stop)
-            progress("creases", 1.0, {"faces": report.faces_guided})
-            more.update(crease_faces=float(report.faces_guided), crease_largest_move=report.largest_move)
-            seconds["creases"] = time.perf_counter() - t2
-    before = abs(measures.signed_volume(mesh.vertices, mesh.faces))
-    more["volume_change"] = measures.signed_volume(out.vertices, out.faces) / max(before, 1e-300) - 1.0
-    seconds["total"] = sum(v for k, v in seconds.items() if k != "total")
-    return out, more
-
-
-def project_vertices(field, mesh: TriangleMesh, task: str) -> TriangleMesh:
-    """Move each input vertex onto the field's zero level set along the gradient (unit box).
-
-    Refuses (InvalidInput) when the move is not safe: a vertex would travel farther than
-    MAX_PROJECTION_MOVE or fail to reach the surface, or more than MAX_NEW_INVERTED of the
-    triangles would end up facing into the object when they did not before (tangling).
-    Triangles that already faced inward in a noisy input are not counted against the edit.
-    """
-    from ..geometry import evaluate, project_to_level_set
-
-    moved_to, residual = project_to_level_set(field, mesh.vertices, iterations=12)
-    moved = np.linalg.norm(moved_to - mesh.vertices, axis=1)
-    advice = "drop --keep-topology to get a remeshed result, or use a gentler setting"
-    if moved.max() > MAX_PROJECTION_MOVE:
-        raise InvalidInput(
-            f"{task} --keep-topology: vertex {int(moved.argmax())} would move {moved.max():.3g} of the object's size "
-            f"(limit {MAX_PROJECTION_MOVE:g}), too far to keep the mesh: {advice}"
-        )
-    if residual.max() > 1e-3:
-        raise InvalidInput(f"{task} --keep-topology: {int((residual > 1e-3).sum())} vertices could not reach the new surface: {advice}")
-    inverted_before = _inverted(field, mesh.vertices, mesh.faces, evaluate)
-    inverted_after = _inverted(field, moved_to, mesh.faces, evaluate)
-    new = int((inverted_after & ~inverted_before).sum())
-    if new > MAX_NEW_INVERTED * len(mesh.faces):
-        raise InvalidInput(f"{task} --keep-topology: {new} triangles would turn over when projected: {advice}")
-    return mesh.with_vertices(moved_to, moved=moved)
-
-
-#: Fraction of triangles allowed to newly face inward after projection (slivers of a noisy scan).
-MAX_NEW_INVERTED = 1e-3
-
-
-def _inverted(field, vertices, faces, evaluate) -> np.ndarray:
-    """(m,) True where a triangle's normal points against the field gradient at its centroid."""
-    centroids = vertices[faces].mean(axis=1)
-    grad = evaluate(field, centroids).gradient
-    return (face_normals(vertices, faces) * grad).sum(1) < 0
