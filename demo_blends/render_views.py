@@ -10,8 +10,8 @@ pairs.json : [{"name": "hook", "before": "hook.ply", "after": "hook_deformed.ply
     property (optional) : which float vertex property of the after mesh colours the heat map;
         by default the first of "stretch", "bend" that the file carries.
 Both pictures of a pair share one camera framed on the union of the two bounding boxes. The heat
-view shows the after mesh coloured by its distortion values (0 up to their 98th percentile, blue to
-red); a mesh without such values is drawn in a neutral grey and the output says so.
+view shows the after mesh coloured by its distortion values (0 up to their 98th percentile, dark violet
+to yellow, viridis); a mesh without such values is drawn in a neutral grey and the output says so.
 
 Besides the three pictures, each pair gets DIR/<name>_sheet.png (before | after | heat side by side,
 with the heat colour bar, low on the left, high on the right, under the heat view) and all pairs
@@ -40,8 +40,25 @@ import numpy as np
 HEAT_PROPERTIES = ("stretch", "bend")
 #: Name of the colour attribute that carries the normalised heat value to the material.
 HEAT_ATTRIBUTE = "isoclay_heat"
-#: Heat colour ramp: (position, linear RGB) from no distortion (blue) to the most (red).
-RAMP = ((0.0, (0.05, 0.15, 0.75)), (0.3, (0.0, 0.6, 0.8)), (0.55, (0.2, 0.75, 0.2)), (0.78, (0.95, 0.8, 0.1)), (1.0, (0.85, 0.08, 0.05)))
+
+
+def _addon_colours():
+    """The add-on's distortion colour map (addon/isoclay_blender/colours.py, numpy only): one source
+    for the viewport's distortion view and these pictures."""
+    import importlib.util
+
+    path = Path(__file__).resolve().parent.parent / "addon" / "isoclay_blender" / "colours.py"
+    spec = importlib.util.spec_from_file_location("isoclay_colours", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+_COLOURS = _addon_colours()
+#: Heat colour ramp: (position, linear RGB) from no distortion (dark violet) to the most (yellow):
+#: viridis, perceptually uniform, the same stops as the add-on's distortion view.
+RAMP = tuple((float(t), tuple(float(c) for c in _COLOURS.srgb_to_linear(rgb)))
+             for t, rgb in zip(np.linspace(0.0, 1.0, len(_COLOURS.RAMP_SRGB)), _COLOURS.RAMP_SRGB))
 #: Direction from the framed object's centre towards the camera (front, a little right and above).
 VIEW_DIRECTION = (0.38, -1.0, 0.42)
 #: Fraction of the picture left free around the object on each side.
@@ -338,7 +355,7 @@ def _surface_material(name, colour):
 
 
 def _heat_material():
-    """Colour attribute (normalised heat in every channel) -> colour ramp blue..red -> base colour."""
+    """Colour attribute (normalised heat in every channel) -> colour ramp (viridis) -> base colour."""
     import bpy
 
     mat = bpy.data.materials.new("heat")

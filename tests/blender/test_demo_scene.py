@@ -367,13 +367,15 @@ def test_render_differs_where_the_geometry_moved(tmp_path):
     still = still[(still[:, 0] >= 0) & (still[:, 0] < w) & (still[:, 1] >= 0) & (still[:, 1] < h)]
     assert diff[still[:, 1], still[:, 0]].mean() < 0.05
 
-    # heat view: the top end (stretch 1) is drawn red, the held bottom (stretch 0) blue, per the colour ramp
+    # heat view: the top end (stretch 1) is drawn yellow, the held bottom (stretch 0) dark violet: the
+    # viridis ends of the add-on's distortion view (van der Walt & Smith 2015), not a rainbow's red and blue
     heat = _pixels(bar["heat"])
     top = _project(after[frac > 0.95], bar["camera"]).round().astype(int)
     bottom = _project(after[after[:, 2] < -0.08], bar["camera"]).round().astype(int)
     top_rgb = heat[np.clip(top[:, 1], 0, h - 1), np.clip(top[:, 0], 0, w - 1)].mean(axis=0)
     bottom_rgb = heat[np.clip(bottom[:, 1], 0, h - 1), np.clip(bottom[:, 0], 0, w - 1)].mean(axis=0)
     assert top_rgb[0] > top_rgb[2] and bottom_rgb[2] > bottom_rgb[0], (top_rgb, bottom_rgb)
+    assert top_rgb[1] > 2 * bottom_rgb[1] and top_rgb[1] > top_rgb[2], (top_rgb, bottom_rgb)
 
 
 @pytest.mark.parametrize(
