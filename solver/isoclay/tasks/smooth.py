@@ -22,7 +22,7 @@ from ..energies.curvature_flow import curvature_flow, enclosed_volume, narrow_ba
 from ..energies.feature_normals import bilateral_normals
 from ..errors import InvalidInput
 from ..mesh.types import TriangleMesh
-from .base import TaskResult, check_param_names, check_stop
+from .base import TaskResult, check_param_names, check_stop, face_normals
 from .result_surface import (  # noqa: F401 (project_vertices, MAX_PROJECTION_MOVE: part of this task's interface)
     MAX_PROJECTION_MOVE,
     SurfaceOptions,
@@ -209,12 +209,55 @@ def cap_nodes(grid, mesh: TriangleMesh) -> np.ndarray | None:
     return out
 
 
+#: Over an open scan's cap, within this many strengths of the scanned triangles, the fitted
+#: membrane is replaced by the scan continued along its own tangent planes (the signed distance to
+#: the plane of the nearest scanned triangle), blended linearly back to the membrane at this
+#: distance. The membrane meets the scan in a bend that smoothing would spread into the kept
+#: surface; the continuation has none. Measured on the noisy sphere cut at z = -0.25 (strength
+#: twice the spacing, seeds 0-2), mean normal error within 0.1 of the rim against the interior's:
+#: 4.7-5.9 x with the membrane, 3.7 x at 1 strength, 2.5 x at 2, 2.2-2.7 x at 3, 2.2 x at 5,
+#: 1.9 x replacing the whole cap band (which leaves a sign jump at the band's edge over a wide
+#: hole, so not used). Only for open results: closed=True keeps the membrane it returns.
+RIM_CONTINUATION_STRENGTHS = 3.0
+
+
+def continue_past_rim(grid, mesh: TriangleMesh, cap: np.ndarray, strength: float) -> None:
+    """Replace the cap nodes' values near the scan by its tangent-plane continuation, in place
+    (see RIM_CONTINUATION_STRENGTHS). The triangles' winding is read against the field once for
+    the whole scan (its value a cell and a half either side of every triangle's centre, by
+    majority): a per-point test fails beside the rim, where the sign itself is in doubt."""
+    import igl
+    from scipy.ndimage import map_coordinates
+
+    idx = np.flatnonzero(cap)
+    if len(idx) == 0:
+        return
+    normals = face_normals(mesh.vertices, mesh.faces)
+    centres = mesh.vertices[mesh.faces].mean(axis=1)
+    h = 1.5 * grid.cell
+    origin = grid.axis()[0]
+
+    def value_at(points):
+        return map_coordinates(grid.values, ((points - origin) / grid.cell).T, order=1, mode="nearest")
+
+    if np.sum(np.sign(value_at(centres + h * normals) - value_at(centres - h * normals))) < 0:
+        normals = -normals
+    x = grid.positions(idx)
+    d2, face, nearest = igl.point_mesh_squared_distance(x, mesh.vertices, mesh.faces)
+    continued = ((x - nearest) * normals[face]).sum(axis=1)
+    weight = np.clip(1.0 - np.sqrt(d2) / (RIM_CONTINUATION_STRENGTHS * strength), 0.0, 1.0)
+    flat = grid.values.reshape(-1)
+    flat[idx] = weight * continued + (1.0 - weight) * flat[idx]
+
+
 def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> TaskResult:
     """Smooth the field and return the new field with a remeshed or vertex-projected surface (unit box)."""
     t0 = time.perf_counter()
     grid = unit_box_grid(field, working_resolution(config.strength))
-    volume_before = enclosed_volume(grid)
     excluded = cap_nodes(grid, mesh)
+    if excluded is not None and not config.closed:
+        continue_past_rim(grid, mesh, excluded, config.strength)
+    volume_before = enclosed_volume(grid)
     hard = hard_surface(grid, config)
     figures = smooth_grid(grid, config, progress, should_stop, excluded, hard)
     new_field = spline_of(grid)
