@@ -191,10 +191,22 @@ def smooth_grid(grid, config: Config, progress, should_stop, excluded=None, hard
 CAP_MARGIN_CELLS = 0.5
 
 
-def cap_nodes(grid, mesh: TriangleMesh) -> np.ndarray | None:
-    """(S^3,) bool: band nodes over the cap a field puts across an open scan's holes (their
-    distance to the scanned triangles exceeds their distance to the level set by more than
-    CAP_MARGIN_CELLS), or None for a closed scan."""
+@dataclass(frozen=True)
+class Cap:
+    """Band nodes over the cap a field puts across an open scan's holes, with what the test that
+    found them learnt: each node's nearest scanned point and its triangle."""
+
+    mask: np.ndarray  # (S^3,) bool
+    index: np.ndarray  # (n,) flat node indices (where mask is set)
+    distance: np.ndarray  # (n,) to the scanned triangles
+    face: np.ndarray  # (n,) nearest scanned triangle
+    nearest: np.ndarray  # (n, 3) nearest scanned point
+
+
+def cap_nodes(grid, mesh: TriangleMesh) -> Cap | None:
+    """The band nodes over the cap a field puts across an open scan's holes (their distance to the
+    scanned triangles exceeds their distance to the level set by more than CAP_MARGIN_CELLS), or
+    None for a closed scan."""
     import igl
 
     from ..extract.footprint import boundary_edge_count
@@ -202,11 +214,13 @@ def cap_nodes(grid, mesh: TriangleMesh) -> np.ndarray | None:
     if boundary_edge_count(mesh.faces) == 0:
         return None
     band = narrow_band(grid, 8.0)
-    d2, _, _ = igl.point_mesh_squared_distance(grid.positions(band.index), mesh.vertices, mesh.faces)
+    d2, face, nearest = igl.point_mesh_squared_distance(grid.positions(band.index), mesh.vertices, mesh.faces)
+    distance = np.sqrt(d2)
     phi = np.abs(grid.values.reshape(-1)[band.index])
-    out = np.zeros(grid.values.size, dtype=bool)
-    out[band.index[np.sqrt(d2) > phi + CAP_MARGIN_CELLS * grid.cell]] = True
-    return out
+    on_cap = distance > phi + CAP_MARGIN_CELLS * grid.cell
+    mask = np.zeros(grid.values.size, dtype=bool)
+    mask[band.index[on_cap]] = True
+    return Cap(mask, band.index[on_cap], distance[on_cap], face[on_cap], nearest[on_cap])
 
 
 #: Over an open scan's cap, within this many strengths of the scanned triangles, the fitted
@@ -214,23 +228,21 @@ def cap_nodes(grid, mesh: TriangleMesh) -> np.ndarray | None:
 #: the plane of the nearest scanned triangle), blended linearly back to the membrane at this
 #: distance. The membrane meets the scan in a bend that smoothing would spread into the kept
 #: surface; the continuation has none. Measured on the noisy sphere cut at z = -0.25 (strength
-#: twice the spacing, seeds 0-2), mean normal error within 0.1 of the rim against the interior's:
-#: 4.7-5.9 x with the membrane, 3.7 x at 1 strength, 2.5 x at 2, 2.2-2.7 x at 3, 2.2 x at 5,
+#: twice the spacing), mean normal error within 0.1 of the rim against the interior's: 4.7-5.9 x
+#: with the membrane (seeds 0-3), 3.7 x at 1 strength, 2.5 x at 2, 2.0-2.7 x at 3 (seeds 0-3), 2.2 x at 5,
 #: 1.9 x replacing the whole cap band (which leaves a sign jump at the band's edge over a wide
 #: hole, so not used). Only for open results: closed=True keeps the membrane it returns.
 RIM_CONTINUATION_STRENGTHS = 3.0
 
 
-def continue_past_rim(grid, mesh: TriangleMesh, cap: np.ndarray, strength: float) -> None:
+def continue_past_rim(grid, mesh: TriangleMesh, cap: Cap, strength: float) -> None:
     """Replace the cap nodes' values near the scan by its tangent-plane continuation, in place
     (see RIM_CONTINUATION_STRENGTHS). The triangles' winding is read against the field once for
     the whole scan (its value a cell and a half either side of every triangle's centre, by
     majority): a per-point test fails beside the rim, where the sign itself is in doubt."""
-    import igl
     from scipy.ndimage import map_coordinates
 
-    idx = np.flatnonzero(cap)
-    if len(idx) == 0:
+    if len(cap.index) == 0:
         return
     normals = face_normals(mesh.vertices, mesh.faces)
     centres = mesh.vertices[mesh.faces].mean(axis=1)
@@ -242,21 +254,20 @@ def continue_past_rim(grid, mesh: TriangleMesh, cap: np.ndarray, strength: float
 
     if np.sum(np.sign(value_at(centres + h * normals) - value_at(centres - h * normals))) < 0:
         normals = -normals
-    x = grid.positions(idx)
-    d2, face, nearest = igl.point_mesh_squared_distance(x, mesh.vertices, mesh.faces)
-    continued = ((x - nearest) * normals[face]).sum(axis=1)
-    weight = np.clip(1.0 - np.sqrt(d2) / (RIM_CONTINUATION_STRENGTHS * strength), 0.0, 1.0)
+    continued = ((grid.positions(cap.index) - cap.nearest) * normals[cap.face]).sum(axis=1)
+    weight = np.clip(1.0 - cap.distance / (RIM_CONTINUATION_STRENGTHS * strength), 0.0, 1.0)
     flat = grid.values.reshape(-1)
-    flat[idx] = weight * continued + (1.0 - weight) * flat[idx]
+    flat[cap.index] = weight * continued + (1.0 - weight) * flat[cap.index]
 
 
 def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> TaskResult:
     """Smooth the field and return the new field with a remeshed or vertex-projected surface (unit box)."""
     t0 = time.perf_counter()
     grid = unit_box_grid(field, working_resolution(config.strength))
-    excluded = cap_nodes(grid, mesh)
-    if excluded is not None and not config.closed:
-        continue_past_rim(grid, mesh, excluded, config.strength)
+    cap = cap_nodes(grid, mesh)
+    if cap is not None and not config.closed:
+        continue_past_rim(grid, mesh, cap, config.strength)
+    excluded = None if cap is None else cap.mask
     volume_before = enclosed_volume(grid)
     hard = hard_surface(grid, config)
     figures = smooth_grid(grid, config, progress, should_stop, excluded, hard)
