@@ -114,7 +114,7 @@ class IsoclaySceneSettings(bpy.types.PropertyGroup):
         name="Detect roundness", description="Let the solver find how round the softened creases are",
         default=True)
     sharpen_radius: FloatProperty(
-        name="Roundness", description="Radius of the rounding to undo (at most a fifth of the object's longest side)",
+        name="Roundness", description="Radius of the rounding to undo (at most two fifths of the object's longest side)",
         default=0.01, min=1e-6, soft_max=1.0, subtype='DISTANCE', unit='LENGTH', precision=4)
     field_resolution: IntProperty(
         name="Field detail", description="Finest cells along the object's longest side of the fitted field (fine cells "
