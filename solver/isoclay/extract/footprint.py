@@ -50,7 +50,7 @@ def trim_to_footprint(result: TriangleMesh, scan: TriangleMesh, on_surface: floa
     v, f = result.vertices, result.faces
     centre = v[f].mean(axis=1)
     d2, face, closest = igl.point_mesh_squared_distance(centre, scan.vertices, scan.faces)
-    keep = (np.sqrt(d2) < on_surface) | ~_on_rim(scan, face, closest)
+    keep = (np.sqrt(d2) < on_surface) | ~on_rim(scan, face, closest)
     keep = _drop_specks(f, keep, len(v))
     kept = f[keep]
     used = np.unique(kept)
@@ -61,7 +61,7 @@ def trim_to_footprint(result: TriangleMesh, scan: TriangleMesh, on_surface: floa
     return out, TrimReport(int((~keep).sum()), open_edges)
 
 
-def _on_rim(scan: TriangleMesh, face: np.ndarray, point: np.ndarray) -> np.ndarray:
+def on_rim(scan: TriangleMesh, face: np.ndarray, point: np.ndarray) -> np.ndarray:
     """(k,) True where a closest point (on scan face `face`) lies on a boundary edge or vertex."""
     sv, sf = scan.vertices, scan.faces
     n = len(sv)
