@@ -91,6 +91,15 @@ def test_stiffness_names_are_the_solvers():
     assert tuple(STIFFNESS) == limits.STIFFNESS_NAMES
 
 
+def test_hole_fill_names_are_the_solvers():
+    from isoclay.extract.hole_fill import FILL_MODES
+    from isoclay.tasks import remesh
+
+    assert limits.HOLE_FILL_MODES == FILL_MODES
+    for mode in limits.HOLE_FILL_MODES:
+        assert remesh.Config.from_params({"hole_fill": mode}, UNIT).hole_fill == mode
+
+
 @pytest.mark.parametrize("task, n_v, n_f, fit", [("smooth", 504_000, 1_008_000, 128), ("deform", 3_000, 6_000, 256)])
 def test_pre_flight_memory_is_the_solvers_estimate(task, n_v, n_f, fit):
     from isoclay.estimates import estimate_memory

@@ -11,3 +11,4 @@ MAX_STRENGTH_REL = 0.25             # tasks.smooth.MAX_STRENGTH_REL: strength <=
 MAX_RADIUS_REL = 0.4                # tasks.sharpen.MAX_RADIUS: radius <= this x the longest side
 STIFFNESS_NAMES = ("rubber", "soft", "medium", "firm", "stiff")  # tasks.deform.STIFFNESS
 CREASE_MODES = ("auto", "crisp", "soft")  # CONTRACTS 3: smooth creases
+HOLE_FILL_MODES = ("auto", "smooth", "flat")  # extract.hole_fill.FILL_MODES: remesh hole_fill

@@ -350,7 +350,10 @@ class ISOCLAY_OT_remesh_shape(_EditOperator, bpy.types.Operator):
 
     def task_params(self, context, obj, world):
         settings = context.scene.isoclay
-        return {} if settings.surface_auto else {"resolution": int(settings.surface_resolution)}
+        params = {"hole_fill": settings.hole_fill}
+        if not settings.surface_auto:
+            params["resolution"] = int(settings.surface_resolution)
+        return params
 
 
 class ISOCLAY_OT_cancel_edit(bpy.types.Operator):

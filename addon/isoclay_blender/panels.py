@@ -151,7 +151,9 @@ class ISOCLAY_PT_edit(_SidebarPanel, bpy.types.Panel):
             box.prop(settings, "sharpen_radius")
         box.operator("isoclay.sharpen_shape", icon='PLAY')
 
-        layout.operator("isoclay.remesh_shape", icon='MOD_REMESH')
+        row = layout.row(align=True)
+        row.operator("isoclay.remesh_shape", icon='MOD_REMESH')
+        row.prop(settings, "hole_fill", text="")
         col = layout.column()
         col.prop(settings, "field_resolution")
         col.prop(settings, "surface_auto")

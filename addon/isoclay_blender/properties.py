@@ -6,7 +6,7 @@ from __future__ import annotations
 import uuid
 
 import bpy
-from .limits import FIELD_DETAIL_RANGE, SHARPEN_AMOUNT_RANGE, SURFACE_DETAIL_RANGE
+from .limits import FIELD_DETAIL_RANGE, HOLE_FILL_MODES, SHARPEN_AMOUNT_RANGE, SURFACE_DETAIL_RANGE
 from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProperty, FloatVectorProperty,
                        IntProperty, PointerProperty, StringProperty)
 
@@ -18,6 +18,15 @@ STIFFNESS_ITEMS = [
     ("firm", "Firm", "Lets its volume follow the bend a little more; a sheet acts thick"),
     ("stiff", "Stiff", "A plain as-rigid-as-possible solid, volume free; a sheet acts very thick"),
 ]
+
+# How Rebuild Surface closes an open scan's holes (solver names, in HOLE_FILL_MODES order).
+HOLE_FILL_ITEMS = [
+    ("auto", "Auto", "Holes up to a quarter of the object's size continue the surface around them; wider "
+                     "openings, like a cup's mouth, get a flat lid"),
+    ("smooth", "Continue", "Every hole continues the surface around it"),
+    ("flat", "Lid", "Every hole gets a flat lid"),
+]
+assert tuple(item[0] for item in HOLE_FILL_ITEMS) == HOLE_FILL_MODES
 
 
 class IsoclayObjectProps(bpy.types.PropertyGroup):
@@ -126,6 +135,8 @@ class IsoclaySceneSettings(bpy.types.PropertyGroup):
     surface_resolution: IntProperty(
         name="Surface detail", description="Cells along the longest side when a new surface is built from the field",
         default=256, min=SURFACE_DETAIL_RANGE[0], max=SURFACE_DETAIL_RANGE[1])
+    hole_fill: EnumProperty(name="Holes", description="Rebuild Surface: how the holes of an open scan are closed",
+                            items=HOLE_FILL_ITEMS, default="auto")
     keep_source_visible: BoolProperty(
         name="Keep source visible", description="Leave the original object visible next to the result",
         default=False)

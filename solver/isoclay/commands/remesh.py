@@ -13,6 +13,10 @@ def add_parser(sub):
     p.add_argument("--resolution", type=int, default=None,
                    help="marching-cubes cells along the longest side (default 256, finer where the field holds thinner parts)")
     p.add_argument("--target-faces", type=int, default=0, help="decimate to at most this many faces (default: keep all)")
+    p.add_argument("--hole-fill", default="auto", choices=("auto", "smooth", "flat"),
+                   help="how an open scan's holes are closed: smooth continues the surface around the hole, flat puts "
+                        "a lid on it; auto (default) continues holes up to a quarter of the longest side and lids "
+                        "wider openings (the mouth of a cup)")
     add_fit_options(p)
     return p
 
@@ -21,7 +25,8 @@ def run(args, ui) -> int:
     out = check_output_path(args.out)
     config = fit_config_from(args)
     prepared = load_input(args.mesh, ui)
-    outcome = run_edit(prepared.world, "remesh", {"resolution": args.resolution, "target_faces": args.target_faces},
+    outcome = run_edit(prepared.world, "remesh", {"resolution": args.resolution, "target_faces": args.target_faces,
+                                                         "hole_fill": args.hole_fill},
                        fit_config=config, progress=ui.progress, should_stop=ui.should_stop, prepared=prepared)
     for line in outcome.warnings[len(prepared.check.warnings):]:
         ui.warn(line)

@@ -61,16 +61,24 @@ def trim_to_footprint(result: TriangleMesh, scan: TriangleMesh, on_surface: floa
     return out, TrimReport(int((~keep).sum()), open_edges)
 
 
-def on_rim(scan: TriangleMesh, face: np.ndarray, point: np.ndarray) -> np.ndarray:
-    """(k,) True where a closest point (on scan face `face`) lies on a boundary edge or vertex."""
+def rim_edges(faces: np.ndarray, n_vertices: int) -> tuple[np.ndarray, np.ndarray]:
+    """(keys, rim_vertex): the boundary edges of a face set as keys min * n + max, sorted, and a
+    (n,) mask of the vertices on them."""
+    e = np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1).astype(np.int64)
+    keys, counts = np.unique(e[:, 0] * n_vertices + e[:, 1], return_counts=True)
+    rim_keys = keys[counts == 1]
+    rim_vertex = np.zeros(n_vertices, dtype=bool)
+    rim_vertex[rim_keys // n_vertices] = True
+    rim_vertex[rim_keys % n_vertices] = True
+    return rim_keys, rim_vertex
+
+
+def on_rim(scan: TriangleMesh, face: np.ndarray, point: np.ndarray, rim=None) -> np.ndarray:
+    """(k,) True where a closest point (on scan face `face`) lies on a boundary edge or vertex;
+    rim : rim_edges(scan.faces, ...) when already known."""
     sv, sf = scan.vertices, scan.faces
     n = len(sv)
-    e = np.sort(np.concatenate([sf[:, [0, 1]], sf[:, [1, 2]], sf[:, [2, 0]]]), axis=1)
-    keys, counts = np.unique(e[:, 0] * n + e[:, 1], return_counts=True)
-    rim_keys = keys[counts == 1]
-    rim_vertex = np.zeros(n, dtype=bool)
-    rim_vertex[rim_keys // n] = True
-    rim_vertex[rim_keys % n] = True
+    rim_keys, rim_vertex = rim if rim is not None else rim_edges(sf, n)
     tri = sf[face]
     a, b, c = sv[tri[:, 0]], sv[tri[:, 1]], sv[tri[:, 2]]
     # barycentric coordinates of the closest point (common practice, no source)
