@@ -9,7 +9,7 @@ from __future__ import annotations
 import hashlib
 import json
 import time
-from dataclasses import dataclass, field as dc_field
+from dataclasses import dataclass, field as dc_field, replace
 
 import numpy as np
 
@@ -101,6 +101,21 @@ def world_metrics(metrics: dict, normalization: Normalization, diagonal: float) 
     return out
 
 
+def capped_fit_config(module, config, fit_config: FitConfig) -> FitConfig:
+    """The fit a task needs: a task module's FIELD_RESOLUTION (cells, or absent) caps the field's
+    resolution (smooth needs no field finer than its working grid: finer detail is what it removes)."""
+    cap = getattr(module, "FIELD_RESOLUTION", None)
+    if cap is None or fit_config.resolution <= cap:
+        return fit_config
+    return replace(fit_config, resolution=int(cap))
+
+
+def fit_config_for(task: str, params: dict, normalization, fit_config: FitConfig) -> FitConfig:
+    """capped_fit_config by task name and raw parameters (the service's cache asks before the edit)."""
+    module = task_module(task)
+    return capped_fit_config(module, module.Config.from_params(dict(params), normalization), fit_config)
+
+
 def run_edit(
     mesh: TriangleMesh,
     task: str,
@@ -119,6 +134,8 @@ def run_edit(
     module = task_module(task)
     config = module.Config.from_params(dict(params), prepared.normalization)
     fit_config = fit_config or FitConfig(seed=seed)
+    if field is None:
+        fit_config = capped_fit_config(module, config, fit_config)
     seconds: dict = {"prepare": time.perf_counter() - t0}
     warnings = tuple(prepared.check.warnings)
     if field is None and getattr(module, "NEEDS_FIELD", True):

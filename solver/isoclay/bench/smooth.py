@@ -385,6 +385,7 @@ def speed_section(quick: bool) -> dict:
     smoothing on the same mesh as the in-process reference."""
     from ..field.fit import FitConfig, fit_field
     from ..mesh import validate_mesh
+    from ..pipeline import capped_fit_config
     from ..tasks import sharpen, smooth
     from ..tasks.base import never_stop, no_progress
 
@@ -399,8 +400,11 @@ def speed_section(quick: bool) -> dict:
     out["sharpen"] = {"seconds": time.perf_counter() - t0, "fit_seconds": fit, "stages": res.seconds, "faces": res.mesh.n_faces,
                       "roundness_radius": res.metrics["roundness_radius_length"]}
     t0 = time.perf_counter()
-    field = fit_field(noisy, FitConfig()).field
+    # the fit an edit makes (run_edit caps smooth's field at smooth.FIELD_RESOLUTION)
+    fit_config = capped_fit_config(smooth, smooth.Config(strength=0.01 * diagonal), FitConfig())
+    field = fit_field(noisy, fit_config).field
     fit = time.perf_counter() - t0
+    out["smooth_fit_resolution"] = fit_config.resolution
     out["smooth"] = []
     for share in ((0.01,) if quick else (0.01, 0.04, 0.08)):
         t1 = time.perf_counter()

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ..tasks.deform import DEFAULT_STIFFNESS, STIFFNESS, summary_line
+from ..tasks.stiffness import DEFAULT_STIFFNESS, STIFFNESS
 from ..tasks.handles import read_handle_file
 from ._common import add_edit_options, add_input_output, check_output_path, fit_config_from, load_input, run_task, write_outputs
 
@@ -46,6 +46,8 @@ def run(args, ui) -> int:
     }
     prepared = load_input(args.mesh, ui)
     outcome = run_task(args, ui, "deform", params, prepared)
+    from ..tasks.deform import summary_line  # the elastic solver loads only when deforming
+
     line = summary_line(outcome.metrics)
     if line:
         ui.warn(line)

@@ -175,23 +175,27 @@ def run_job(spec: dict, channel: _Channel) -> dict:
 
     configure_torch(spec.get("threads"))
     from ..field.checkpoint import load_field, save_field
-    from ..pipeline import fit_key, prepare_mesh, run_edit
+    from ..pipeline import fit_config_for, fit_key, prepare_mesh, run_edit
     from ..summaries import describe_edit
     from .param_check import fit_config_of
 
     fit_config, params = fit_config_of(params, int(spec.get("seed", 0)))
     mesh = TriangleMesh(np.array(v), np.array(f))
     prepared = prepare_mesh(mesh)
-    key = fit_key(prepared.mesh_hash, fit_config)
+    # the fit this task would make (smooth caps its resolution), else the full one if cached
+    keys = [fit_key(prepared.mesh_hash, fit_config_for(spec["task"], params, prepared.normalization, fit_config)),
+            fit_key(prepared.mesh_hash, fit_config)]
     cache = FieldCache(spec["cache_root"], spec["cache_max_bytes"])
     field, cache_hit = None, False
     if spec.get("start_field_blob"):
         _import_field_kinds()  # a node's field may be of a kind a task module registers (e.g. a warped field)
         field, _ = load_field(blobs.path(spec["start_field_blob"]))
     else:
-        hit = cache.get(key)
-        if hit is not None:
-            field, cache_hit = hit[0], True
+        for key in dict.fromkeys(keys):
+            hit = cache.get(key)
+            if hit is not None:
+                field, cache_hit = hit[0], True
+                break
     if channel.should_stop():
         raise Cancelled("cancelled before the edit started; nothing was written")
     outcome = run_edit(mesh, spec["task"], params, field=field, fit_config=fit_config, progress=channel.progress,
