@@ -81,6 +81,40 @@ def test_echo_returns_the_mesh_sent(empty_scene, addon, solver):
     np.testing.assert_array_equal(np.asarray(job.record.faces), faces)
 
 
+def test_rebuild_surface_holes_menu_reaches_the_solver(empty_scene, addon, solver):
+    # An ico-sphere of radius 1 with its top cap (z > 0.9, a hole 0.87 across) deleted, rebuilt
+    # with Holes "Continue" and "Lid": continued, the surface over the hole stays near the sphere
+    # (within 5% of the radius at the pole; the field has 32 cells per axis); with the lid it is
+    # flat at the rim's height, the cap's sagitta R - sqrt(R^2 - r^2) = 0.1 below the pole
+    # (handbook formula).
+    if "remesh" not in solver_tasks():
+        pytest.skip("the solver offers no 'remesh' task (solver/isoclay/tasks/registry.py)")
+    import bmesh
+
+    settings = bpy.context.scene.isoclay
+    settings.field_resolution = FIELD_RESOLUTION
+    settings.surface_resolution = SURFACE_RESOLUTION
+    settings.surface_auto = False
+    source = _sphere(radius=1.0, subdivisions=4)
+    bm = bmesh.new()
+    bm.from_mesh(source.data)
+    bmesh.ops.delete(bm, geom=[f for f in bm.faces if f.calc_center_median().z > 0.9], context='FACES')
+    bm.to_mesh(source.data)
+    bm.free()
+    pole = {}
+    for mode in ("smooth", "flat"):
+        bpy.context.view_layer.objects.active = source
+        source.hide_set(False)
+        source.select_set(True)
+        settings.hole_fill = mode
+        assert bpy.ops.isoclay.remesh_shape('EXEC_DEFAULT', True) == {'FINISHED'}
+        world, _ = _world_mesh(addon, bpy.context.active_object)
+        top = world[(np.linalg.norm(world[:, :2], axis=1) < 0.2) & (world[:, 2] > 0)]  # over the hole
+        pole[mode] = float(top[:, 2].min())
+    assert pole["smooth"] > 0.95, pole  # measured 0.966 (field 32 cells per axis)
+    assert pole["flat"] < 0.92, pole  # measured 0.895
+
+
 def test_rebuild_surface_end_to_end_with_undo_and_history(empty_scene, addon, solver):
     if "remesh" not in solver_tasks():
         pytest.skip("the solver offers no 'remesh' task (solver/isoclay/tasks/registry.py)")
