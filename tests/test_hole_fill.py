@@ -44,7 +44,8 @@ def test_small_holes_continue_the_sphere_closer_than_pymeshfix():
     # A sphere scan with four holes (radius 0.08 on a sphere of radius 0.5): the rebuilt surface
     # over each hole lies closer to the analytic sphere than MeshFix's fill (pymeshfix, Attene 2010)
     # and than our flat membrane (which sits up to the cap's sagitta, R - sqrt(R^2 - r^2) = 0.0064,
-    # inside). Measured: continued 0.0015, pymeshfix 0.0029, flat 0.0048 mean distance.
+    # inside). Measured: continued 0.00009, pymeshfix 0.0029, flat 0.0048 mean distance (before
+    # the two rings beside the fill were faired with it, continued was 0.0015).
     scan = _holed_sphere()
     fit = FitConfig(resolution=128)
     smooth = run_edit(scan, "remesh", {"resolution": 128}, fit_config=fit)
@@ -54,8 +55,8 @@ def test_small_holes_continue_the_sphere_closer_than_pymeshfix():
     theirs = _fill_error(TriangleMesh(np.asarray(fix.points), np.asarray(fix.faces)))
     ours = _fill_error(smooth.mesh)
     assert smooth.report["holes_continued"] == 4 and "holes_filled" not in flat.report
-    assert ours <= theirs, (ours, theirs)
-    assert ours <= 0.5 * _fill_error(flat.mesh)
+    assert ours <= 0.5 * theirs, (ours, theirs)
+    assert ours <= 0.1 * _fill_error(flat.mesh)
     assert smooth.report["watertight"] and measures.is_watertight(smooth.mesh.faces)
 
 
