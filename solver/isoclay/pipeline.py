@@ -127,8 +127,13 @@ def run_edit(
     should_stop=never_stop,
     seed: int = 0,
     prepared: Prepared | None = None,
+    correspondence: bool = True,
 ) -> EditOutcome:
-    """Run one task on a world-units mesh. Parameters are checked before any fitting starts."""
+    """Run one task on a world-units mesh. Parameters are checked before any fitting starts.
+
+    correspondence : also map each result vertex to its source point on the input (what carries
+        UVs and materials in Blender); callers that write plain mesh files skip it (13 s of a
+        3.6M-face scan's rebuild)."""
     t0 = time.perf_counter()
     prepared = prepared or prepare_mesh(mesh)
     module = task_module(task)
@@ -145,10 +150,12 @@ def run_edit(
         warnings += thin_warnings(fitted.thin, prepared.normalization, fit_config.resolution)
     result = module.run(field, prepared.unit, config, progress, should_stop)
     seconds.update({k: float(v) for k, v in result.seconds.items()})
-    t1 = time.perf_counter()
-    progress("correspondence", 0.0, {})
-    correspondence = source_correspondence(prepared, result.mesh, result.rest_points)
-    seconds["correspondence"] = time.perf_counter() - t1
+    mapping = None
+    if correspondence:
+        t1 = time.perf_counter()
+        progress("correspondence", 0.0, {})
+        mapping = source_correspondence(prepared, result.mesh, result.rest_points)
+        seconds["correspondence"] = time.perf_counter() - t1
     world = prepared.normalization.mesh_from_unit(result.mesh)
     for name in LENGTH_VERTEX_VALUES & set(world.vertex_values):
         world.vertex_values[name] = (world.vertex_values[name] / prepared.normalization.scale).astype(np.float32)
@@ -170,7 +177,7 @@ def run_edit(
     }
     return EditOutcome(
         world, field, result.field, prepared.normalization, prepared.mesh_hash,
-        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, warnings, report, correspondence,
+        fit_key(prepared.mesh_hash, fit_config), metrics, seconds, warnings, report, mapping,
     )
 
 

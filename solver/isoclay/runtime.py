@@ -17,7 +17,7 @@ def free_cores() -> int:
 
 
 def configure_torch(threads: int | None = None) -> None:
-    """Set threads and flush denormals once per process (see FACTS: denormal slowdowns).
+    """Set threads (torch's and numba's) and flush denormals once per process (see FACTS: denormal slowdowns).
 
     OMP_WAIT_POLICY must be set before torch starts its OpenMP pool, so it is set here
     only if the caller has not; the CLI entry point calls this before heavy work.
@@ -31,6 +31,9 @@ def configure_torch(threads: int | None = None) -> None:
         threads = int(env) if env else free_cores()
     torch.set_num_threads(max(1, threads))
     torch.set_flush_denormal(True)
+    import numba  # the compiled distance kernels run on as many threads as torch
+
+    numba.set_num_threads(max(1, min(threads, numba.config.NUMBA_NUM_THREADS)))
     _configured = True
 
 

@@ -144,7 +144,7 @@ def run_chain(mesh_world, steps, fit: dict, should_stop=lambda: False, progress=
             else:
                 prepared = carried
         outcome = run_edit(prepared.world, step.task, step.params, field=field, fit_config=fit_config,
-                           progress=progress, should_stop=should_stop, prepared=prepared)
+                           progress=progress, should_stop=should_stop, prepared=prepared, correspondence=False)
         report = dict(outcome.report)
         report["field"] = "carried" if field is not None else "fitted"
         report["result_volume"] = measures.signed_volume(outcome.mesh.vertices, outcome.mesh.faces)

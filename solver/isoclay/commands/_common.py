@@ -67,7 +67,7 @@ def run_task(args, ui, task: str, params: dict, prepared: Prepared):
         return type(outcome)(TriangleMesh(mesh.vertices, mesh.faces, mesh.vertex_values, prepared.world.source),
                              outcome.report, outcome.metrics, outcome.node_id, outcome.job_id, outcome.warnings)
     outcome = run_edit(prepared.world, task, params, fit_config=config, progress=ui.progress,
-                       should_stop=ui.should_stop, prepared=prepared)
+                       should_stop=ui.should_stop, prepared=prepared, correspondence=False)
     for line in outcome.warnings[len(prepared.check.warnings):]:  # what the fit found (thin parts)
         ui.warn(line)
     return outcome

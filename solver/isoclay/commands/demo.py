@@ -89,7 +89,7 @@ def run(args, ui) -> int:
         prepared = prepare_mesh(read_mesh(scene / edit["mesh"]), edit["mesh"])
         params = _task_params(task, edit, scene, args.quick)
         outcome = run_edit(prepared.world, task, params, fit_config=fit_config, progress=ui.progress,
-                           should_stop=ui.should_stop, prepared=prepared)
+                           should_stop=ui.should_stop, prepared=prepared, correspondence=False)
         result_path = out / f"{prop}_result.ply"
         write_mesh(result_path, outcome.mesh)
         write_report(str(out / f"{prop}_report.json"), outcome.report)

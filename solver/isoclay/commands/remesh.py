@@ -27,7 +27,8 @@ def run(args, ui) -> int:
     prepared = load_input(args.mesh, ui)
     outcome = run_edit(prepared.world, "remesh", {"resolution": args.resolution, "target_faces": args.target_faces,
                                                          "hole_fill": args.hole_fill},
-                       fit_config=config, progress=ui.progress, should_stop=ui.should_stop, prepared=prepared)
+                       fit_config=config, progress=ui.progress, should_stop=ui.should_stop, prepared=prepared,
+                       correspondence=False)
     for line in outcome.warnings[len(prepared.check.warnings):]:
         ui.warn(line)
     write_outputs(outcome, out, args.report, ui)

@@ -129,11 +129,27 @@ def _mark_blocks(v, f, normals, origin, cell, band, shape, table, allowed):
                         table[bi, bj, bk] = 1
 
 
+@numba.njit(cache=True, parallel=True)
+def _scatter(v, f, normals, origin, cell, band, shape, table, dist2, side, face, slabs):
+    """Every triangle into the nodes within ``band`` of it, keeping each node's nearest. The grid
+    is cut into ``slabs`` slabs along z that run on all threads; each node takes the triangles in
+    their order in either case, so the result is a single thread's (a 35k-vertex scan at 384
+    cells: 1.4 s on one thread for both grids of its fit)."""
+    width = (shape[2] + slabs - 1) // slabs
+    for s in numba.prange(slabs):
+        _scatter_slab(v, f, normals, origin, cell, band, shape, table, dist2, side, face, s * width,
+                      min(shape[2], (s + 1) * width) - 1)
+
+
 @numba.njit(cache=True)
-def _scatter(v, f, normals, origin, cell, band, shape, table, dist2, side, face):
+def _scatter_slab(v, f, normals, origin, cell, band, shape, table, dist2, side, face, k_first, k_last):
     band2 = band * band
     for t in range(f.shape[0]):
         lo, hi = _node_box(v, f, t, origin, cell, band, shape)
+        if hi[2] < k_first or lo[2] > k_last:
+            continue
+        lo[2] = max(lo[2], k_first)
+        hi[2] = min(hi[2], k_last)
         ax, ay, az = v[f[t, 0], 0], v[f[t, 0], 1], v[f[t, 0], 2]
         bx, by, bz = v[f[t, 1], 0], v[f[t, 1], 1], v[f[t, 1], 2]
         cx, cy, cz = v[f[t, 2], 0], v[f[t, 2], 1], v[f[t, 2], 2]
@@ -224,12 +240,14 @@ def _propagate(v, f, normals, origin, cell, band, shape, table, blocks, dist2, s
                 _try_face(v, f, normals, t, px, py, pz, b, li, lj, lk, band2, dist2, side, face)
 
 
-@numba.njit(cache=True)
+@numba.njit(cache=True, parallel=True)
 def _descend(v, f, normals, origin, cell, band, blocks, dist2, side, face, vf_start, vf_faces):
     """Greedy walk of each node's nearest face over faces sharing a vertex, until no neighbour
-    is nearer: the spread faces are a cell or so off, the walk finds the true nearest."""
+    is nearer: the spread faces are a cell or so off, the walk finds the true nearest. Each node
+    reads and writes only its own entries, so blocks run on all threads (the same result as one
+    thread; on the 3.6M-face scan 13.1 s on one thread)."""
     band2 = band * band
-    for b in range(blocks.shape[0]):
+    for b in numba.prange(blocks.shape[0]):
         for li in range(BLOCK):
             for lj in range(BLOCK):
                 for lk in range(BLOCK):
@@ -271,6 +289,8 @@ def _vertex_faces(n_vertices: int, f: np.ndarray):
 #: spreading, measured on a 35k-vertex scan at 384 cells), triangles scatter
 #: only into the nodes within one cell and their faces spread through the band by sweeps.
 MAX_SCATTER_PAIRS = 300_000_000
+#: z slabs per thread of the parallel scatter (a scan's surface is spread unevenly along z).
+SLABS_PER_THREAD = 4
 #: Forward and backward sweeps of the spreading pass (each reaches farther than a cell).
 SWEEPS = 2
 
@@ -366,10 +386,11 @@ def band_distances(vertices, faces, origin, cell: float, shape, band: float, all
     dist2 = np.full((n, BLOCK, BLOCK, BLOCK), np.inf, dtype=np.float64)
     side = np.zeros((n, BLOCK, BLOCK, BLOCK), dtype=np.float32)
     face = np.full((n, BLOCK, BLOCK, BLOCK), -1, dtype=np.int32)
+    slabs = SLABS_PER_THREAD * numba.get_num_threads()
     if _scatter_pairs(v, f, cell, band) <= MAX_SCATTER_PAIRS:
-        _scatter(v, f, normals, origin, float(cell), float(band), shape, table, dist2, side, face)
+        _scatter(v, f, normals, origin, float(cell), float(band), shape, table, dist2, side, face, slabs)
     else:  # many triangles per cell (a scan): near nodes by scatter, the rest by spreading faces
-        _scatter(v, f, normals, origin, float(cell), float(min(band, cell)), shape, table, dist2, side, face)
+        _scatter(v, f, normals, origin, float(cell), float(min(band, cell)), shape, table, dist2, side, face, slabs)
         for _ in range(SWEEPS):
             for backward in (False, True):
                 _propagate(v, f, normals, origin, float(cell), float(band), shape, table, blocks, dist2, side, face, backward)
