@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from ..extract.hole_fill import FILL_MODES
 from ..pipeline import run_edit
 from ._common import add_fit_options, add_input_output, check_output_path, fit_config_from, load_input, write_outputs
 
@@ -13,7 +14,7 @@ def add_parser(sub):
     p.add_argument("--resolution", type=int, default=None,
                    help="marching-cubes cells along the longest side (default 256, finer where the field holds thinner parts)")
     p.add_argument("--target-faces", type=int, default=0, help="decimate to at most this many faces (default: keep all)")
-    p.add_argument("--hole-fill", default="auto", choices=("auto", "smooth", "flat"),
+    p.add_argument("--hole-fill", default="auto", choices=FILL_MODES,
                    help="how an open scan's holes are closed: smooth continues the surface around the hole, flat puts "
                         "a lid on it; auto (default) continues holes up to a quarter of the longest side and lids "
                         "wider openings (the mouth of a cup)")

@@ -28,11 +28,9 @@ class TrimReport:
 
 def boundary_edge_count(faces: np.ndarray) -> int:
     """Edges used by exactly one face (the rims of holes)."""
-    if len(faces) == 0:
-        return 0
-    e = np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1).astype(np.int64)
-    _, counts = np.unique(e[:, 0] * (int(e.max()) + 1) + e[:, 1], return_counts=True)  # 1-D keys: 10x faster than rows
-    return int((counts == 1).sum())
+    from ..mesh.measures import edge_face_counts
+
+    return int((edge_face_counts(faces)[1] == 1).sum())
 
 
 def trim_to_footprint(result: TriangleMesh, scan: TriangleMesh, on_surface: float) -> tuple[TriangleMesh, TrimReport]:
@@ -64,13 +62,13 @@ def trim_to_footprint(result: TriangleMesh, scan: TriangleMesh, on_surface: floa
 def rim_edges(faces: np.ndarray, n_vertices: int) -> tuple[np.ndarray, np.ndarray]:
     """(keys, rim_vertex): the boundary edges of a face set as keys min * n + max, sorted, and a
     (n,) mask of the vertices on them."""
-    e = np.sort(np.concatenate([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]]), axis=1).astype(np.int64)
-    keys, counts = np.unique(e[:, 0] * n_vertices + e[:, 1], return_counts=True)
-    rim_keys = keys[counts == 1]
+    from ..mesh.measures import edge_face_counts
+
+    edges, counts, _ = edge_face_counts(faces)
+    rim = edges[counts == 1]
     rim_vertex = np.zeros(n_vertices, dtype=bool)
-    rim_vertex[rim_keys // n_vertices] = True
-    rim_vertex[rim_keys % n_vertices] = True
-    return rim_keys, rim_vertex
+    rim_vertex[rim.reshape(-1)] = True
+    return rim[:, 0] * n_vertices + rim[:, 1], rim_vertex
 
 
 def on_rim(scan: TriangleMesh, face: np.ndarray, point: np.ndarray, rim=None) -> np.ndarray:

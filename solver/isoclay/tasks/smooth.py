@@ -261,15 +261,15 @@ PLANE_OFFSET_STRENGTHS = 1.0
 PLANE_SAMPLE_FACES = 200_000
 
 
-def rim_planes(mesh: TriangleMesh, faces: np.ndarray, normals: np.ndarray, strength: float):
+def rim_planes(mesh: TriangleMesh, faces: np.ndarray, normals: np.ndarray, centres: np.ndarray, strength: float):
     """(points, normals) of the smoothed tangent planes of the given scanned triangles
-    (PLANE_NORMAL_STRENGTHS, PLANE_OFFSET_STRENGTHS); `normals` are all the scan's face normals,
-    oriented outward."""
+    (PLANE_NORMAL_STRENGTHS, PLANE_OFFSET_STRENGTHS); `normals` and `centres` are all the scan's
+    face normals (oriented outward) and centres."""
     from scipy.spatial import cKDTree
 
-    corners = mesh.vertices[mesh.faces]
-    centres = corners.mean(axis=1)
-    area = 0.5 * np.linalg.norm(np.cross(corners[:, 1] - corners[:, 0], corners[:, 2] - corners[:, 0]), axis=1)
+    from ..mesh.measures import face_areas
+
+    area = face_areas(mesh.vertices, mesh.faces)
     lend = np.arange(len(centres))
     if len(lend) > PLANE_SAMPLE_FACES:
         lend = np.random.default_rng(0).choice(lend, PLANE_SAMPLE_FACES, replace=False)
@@ -311,7 +311,7 @@ def continue_past_rim(grid, mesh: TriangleMesh, cap: Cap, strength: float) -> No
         normals = -normals
     near = cap.distance < RIM_CONTINUATION_STRENGTHS * strength
     faces, which = np.unique(cap.face[near], return_inverse=True)
-    points, plane_normals = rim_planes(mesh, faces, normals, strength)
+    points, plane_normals = rim_planes(mesh, faces, normals, centres, strength)
     index = cap.index[near]
     continued = ((grid.positions(index) - points[which]) * plane_normals[which]).sum(axis=1)
     weight = 1.0 - cap.distance[near] / (RIM_CONTINUATION_STRENGTHS * strength)
