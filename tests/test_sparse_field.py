@@ -165,3 +165,32 @@ def test_node_grid_of_a_sparse_field_is_its_values_at_the_nodes():
     a = grid.axis()
     nodes = np.stack(np.meshgrid(a, a, a, indexing="ij"), axis=-1).reshape(-1, 3)
     np.testing.assert_allclose(grid.values.reshape(-1), field.fast_values(nodes), atol=2e-6)
+
+
+def test_plain_grid_and_module_are_one_field():
+    # A rebuild works on the fitted spline as a plain grid (no torch), every other task on its torch
+    # module: both must be the same function. Reference: the torch module's own forward (autograd
+    # path), against the grid's compiled values, at points near and away from the surface.
+    cup, _ = open_cup()
+    from isoclay.field.fit import fit_field
+    from isoclay.field.grids import SparseGrid
+    from isoclay.pipeline import prepare_mesh
+
+    unit = prepare_mesh(cup).unit
+    plain = fit_field(unit, FitConfig(resolution=256), modules=False).field
+    module = fit_field(unit, FitConfig(resolution=256)).field
+    assert isinstance(plain, SparseGrid) and isinstance(module, SparseSplineSDF) and len(plain.blocks) > 0
+    p = np.concatenate([unit.vertices[::7], np.random.default_rng(3).uniform(-0.6, 0.6, (3000, 3))])
+    with torch.no_grad():
+        forward = module(torch.as_tensor(p, dtype=torch.float32)).numpy()
+    np.testing.assert_allclose(plain.fast_values(p), forward, atol=2e-6)
+    np.testing.assert_allclose(plain.module().fast_values(p), forward, atol=2e-6)
+    # the grid becomes a module without copying its coefficients
+    assert np.shares_memory(plain.module().coefficients.detach().numpy(), plain.coefficients)
+    # and a rebuild gives the same surface either way
+    a = run_edit(cup, "remesh", {"resolution": 64}, fit_config=FitConfig(resolution=256), correspondence=False)
+    b = run_edit(cup, "remesh", {"resolution": 64}, fit_config=FitConfig(resolution=256), correspondence=False,
+                 plain_field=True)
+    assert isinstance(b.field, SparseGrid) and isinstance(a.field, SparseSplineSDF)
+    np.testing.assert_array_equal(a.mesh.faces, b.mesh.faces)
+    np.testing.assert_allclose(a.mesh.vertices, b.mesh.vertices, atol=1e-9)

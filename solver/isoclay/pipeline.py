@@ -10,10 +10,10 @@ import hashlib
 import json
 import time
 from dataclasses import dataclass, field as dc_field, replace
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from .field.base import SDFField
 from .field.fit import FitConfig, fit_field
 from .mesh import measures
 from .mesh.correspondence import SurfaceCorrespondence, closest_surface_points, identity_correspondence, usable_faces
@@ -22,6 +22,9 @@ from .mesh.types import TriangleMesh
 from .mesh.validate import MeshCheck, validate_mesh
 from .callbacks import never_stop, no_progress
 from .tasks.registry import task_module
+
+if TYPE_CHECKING:
+    from .field.base import SDFField
 
 #: Metrics that tasks report as unit-box lengths; the report converts them to the mesh's units
 #: and adds a twin ending in "_rel" (fraction of the bounding-box diagonal). Any metric whose
@@ -128,12 +131,17 @@ def run_edit(
     seed: int = 0,
     prepared: Prepared | None = None,
     correspondence: bool = True,
+    plain_field: bool = False,
 ) -> EditOutcome:
     """Run one task on a world-units mesh. Parameters are checked before any fitting starts.
 
     correspondence : also map each result vertex to its source point on the input (what carries
         UVs and materials in Blender); callers that write plain mesh files skip it (13 s of a
-        3.6M-face scan's rebuild)."""
+        3.6M-face scan's rebuild).
+    plain_field : a task that reads field values only (its module sets VALUES_ONLY: remesh) gets
+        the fitted spline as a plain grid and torch is never imported (2.8 s and 220 MB of a
+        command-line rebuild); outcome.field is then that grid. Callers that keep the field
+        (the service's cache and history, batch) leave it False."""
     t0 = time.perf_counter()
     prepared = prepared or prepare_mesh(mesh)
     module = task_module(task)
@@ -144,7 +152,8 @@ def run_edit(
     seconds: dict = {"prepare": time.perf_counter() - t0}
     warnings = tuple(prepared.check.warnings)
     if field is None and getattr(module, "NEEDS_FIELD", True):
-        fitted = fit_field(prepared.unit, fit_config, progress, should_stop, np.random.default_rng(seed))
+        modules = not (plain_field and getattr(module, "VALUES_ONLY", False))
+        fitted = fit_field(prepared.unit, fit_config, progress, should_stop, np.random.default_rng(seed), modules=modules)
         field = fitted.field
         seconds["fit"] = fitted.seconds["total"]
         warnings += thin_warnings(fitted.thin, prepared.normalization, fit_config.resolution)
@@ -202,7 +211,7 @@ def source_correspondence(prepared: Prepared, result_unit: TriangleMesh, rest_po
 
 def thin_warnings(thin, normalization: Normalization, resolution: int) -> tuple[str, ...]:
     """One line per part the field cannot hold (field.thin), in the mesh's own units."""
-    from .field.spline import DEFAULT_HALF_EXTENT
+    from .field.grids import DEFAULT_HALF_EXTENT
 
     cell = normalization.length_from_unit(2 * DEFAULT_HALF_EXTENT / resolution)
     out = []

@@ -1,4 +1,4 @@
-"""Process-wide torch settings for shared CPUs: thread count, passive waiting, no denormals."""
+"""Process-wide settings for shared CPUs: thread counts (torch's and numba's), passive waiting, no denormals."""
 
 from __future__ import annotations
 
@@ -16,6 +16,21 @@ def free_cores() -> int:
     return max(1, n - 1) if n > 2 else n
 
 
+def _threads(threads: int | None) -> int:
+    if threads is None:
+        env = os.environ.get("ISOCLAY_THREADS")
+        threads = int(env) if env else free_cores()
+    return max(1, threads)
+
+
+def configure_threads(threads: int | None = None) -> None:
+    """Set numba's threads only (the compiled distance and evaluation kernels), for work that
+    never imports torch (a command-line rebuild)."""
+    import numba
+
+    numba.set_num_threads(max(1, min(_threads(threads), numba.config.NUMBA_NUM_THREADS)))
+
+
 def configure_torch(threads: int | None = None) -> None:
     """Set threads (torch's and numba's) and flush denormals once per process (see FACTS: denormal slowdowns).
 
@@ -26,14 +41,10 @@ def configure_torch(threads: int | None = None) -> None:
     os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     import torch
 
-    if threads is None:
-        env = os.environ.get("ISOCLAY_THREADS")
-        threads = int(env) if env else free_cores()
-    torch.set_num_threads(max(1, threads))
+    threads = _threads(threads)
+    torch.set_num_threads(threads)
     torch.set_flush_denormal(True)
-    import numba  # the compiled distance kernels run on as many threads as torch
-
-    numba.set_num_threads(max(1, min(threads, numba.config.NUMBA_NUM_THREADS)))
+    configure_threads(threads)  # the compiled kernels run on as many threads as torch
     _configured = True
 
 

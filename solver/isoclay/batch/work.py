@@ -112,7 +112,7 @@ def _gib(n: float) -> str:
 
 def _carried(prepared_next, normalization: Normalization, field, fit_resolution: int):
     """The next step's Prepared in the field's unit box when the field is valid for it, else None."""
-    from ..field.spline import DEFAULT_HALF_EXTENT
+    from ..field.grids import DEFAULT_HALF_EXTENT
     from ..pipeline import Prepared
 
     tolerance = CARRY_CELLS * 2 * DEFAULT_HALF_EXTENT / fit_resolution

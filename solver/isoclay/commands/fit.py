@@ -5,7 +5,6 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import InvalidInput
-from ..field.checkpoint import save_field
 from ..field.fit import fit_field
 from ..pipeline import fit_key
 from ._common import add_fit_options, fit_config_from, load_input, write_report
@@ -22,6 +21,8 @@ def add_parser(sub):
 
 
 def run(args, ui) -> int:
+    from ..field.checkpoint import save_field  # torch: loaded only when a checkpoint is written
+
     out = Path(args.out)
     if out.suffix != ".pt":
         raise InvalidInput(f"{out.name}: field checkpoints end in .pt")

@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 from ..extract.hole_fill import FILL_MODES
+from ..field.fit import needs_torch
 from ..pipeline import run_edit
+from ..runtime import configure_threads, configure_torch
 from ._common import add_fit_options, add_input_output, check_output_path, fit_config_from, load_input, write_outputs
 
 
@@ -19,17 +21,22 @@ def add_parser(sub):
                         "a lid on it; auto (default) continues holes up to a quarter of the longest side and lids "
                         "wider openings (the mouth of a cup)")
     add_fit_options(p)
+    p.set_defaults(needs_torch=False)  # a spline fit and extraction need no torch; run() sets it up if the fit does
     return p
 
 
 def run(args, ui) -> int:
     out = check_output_path(args.out)
     config = fit_config_from(args)
+    if needs_torch(config):
+        configure_torch(args.threads)
+    else:
+        configure_threads(args.threads)
     prepared = load_input(args.mesh, ui)
     outcome = run_edit(prepared.world, "remesh", {"resolution": args.resolution, "target_faces": args.target_faces,
                                                          "hole_fill": args.hole_fill},
                        fit_config=config, progress=ui.progress, should_stop=ui.should_stop, prepared=prepared,
-                       correspondence=False)
+                       correspondence=False, plain_field=True)
     for line in outcome.warnings[len(prepared.check.warnings):]:
         ui.warn(line)
     write_outputs(outcome, out, args.report, ui)

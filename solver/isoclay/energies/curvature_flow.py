@@ -99,7 +99,8 @@ def node_grid_of(field, resolution: int = 128, half_extent: float | None = None)
         return NodeGrid(c, field.half_extent)
     if isinstance(field, SplineSDF):
         return _spline_on_grid(field, resolution, e)
-    from ..field.sparse import SparseSplineSDF, grid_values
+    from ..field.grids import grid_values
+    from ..field.sparse import SparseSplineSDF
     from ..geometry import values
 
     if isinstance(field, SparseSplineSDF):  # separable coarse part, fine residual only near its blocks

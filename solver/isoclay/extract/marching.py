@@ -17,7 +17,7 @@ import time
 
 import numpy as np
 
-from ..geometry.derivatives import values as field_values
+from ..geometry.field_values import values as field_values
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
 from ..callbacks import check_stop, never_stop, no_progress

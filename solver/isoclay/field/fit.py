@@ -4,12 +4,12 @@ Stages (each reported through ``progress``):
 1. ``distance``: a coarse dense grid (``coarse_resolution`` cells) gets exact distances in a band
    around the surface, scattered from the triangles (distances.py), signed by winding numbers;
    far nodes an upper bound with the right sign (node_values.py). Its values become a cubic
-   B-spline through a smoothed second-order quasi-interpolant (spline.spline_from_distances).
+   B-spline through a smoothed second-order quasi-interpolant (grids.dense_grid_from_distances).
 2. ``detail``: where that coarse field misses the input's own vertices by more than
    ``refine_tolerance`` fine cells (curvature, thin parts, detail), blocks of a fine grid of
    ``resolution`` cells get exact distances too, and the fine spline of the residual is stored
-   in those blocks only (sparse.SparseSplineSDF). At ``resolution`` <= ``coarse_resolution`` the
-   dense grid alone is the field (faster for small cases).
+   in those blocks only (grids.SparseGrid; sparse.SparseSplineSDF as a module). At
+   ``resolution`` <= ``coarse_resolution`` the dense grid alone is the field (faster for small cases).
 3. ``refine`` (optional, ``steps`` > 0): Adam on the coefficients with surface samples (f = 0,
    grad f = normal), exact near-surface samples and an eikonal term (Gropp et al. 2020,
    "Implicit geometric regularization for learning shapes").
@@ -22,20 +22,16 @@ import time
 from dataclasses import asdict, dataclass
 
 import numpy as np
-import torch
 
 from ..errors import InvalidInput
 from ..mesh.types import TriangleMesh
 from ..callbacks import check_stop, never_stop, no_progress
-from .base import SDFField
-from .mlp import MLPSDF
 from .node_values import buried_vertices, coarse_node_values, fine_node_values, refined_blocks
 from .distances import BLOCK
-from .sparse import SparseSplineSDF, smoothed_coefficients
-from .spline import DEFAULT_HALF_EXTENT, spline_from_distances
+from .grids import DEFAULT_HALF_EXTENT, SparseGrid, dense_grid_from_distances, smoothed_coefficients
 from .supervision import SignedDistance, sample_surface
 from .winding import WindingNumbers
-from ..mesh.measures import face_areas
+from ..mesh.measures import edge_lengths, face_areas
 
 
 @dataclass(frozen=True)
@@ -107,9 +103,11 @@ class FitConfig:
 
 @dataclass(frozen=True)
 class FittedField:
-    """field : the fitted SDFField (unit-box coordinates); metrics : fit figures; seconds : per stage."""
+    """field : the fitted field (unit-box coordinates): an SDFField (torch module), or with
+    fit_field(modules=False) a spline's plain grid (grids.DenseGrid or SparseGrid, values only);
+    metrics : fit figures; seconds : per stage."""
 
-    field: SDFField
+    field: object
     config: FitConfig
     metrics: dict
     seconds: dict
@@ -152,8 +150,7 @@ def fine_resolution(mesh: TriangleMesh, coarse, config: FitConfig, rng) -> int:
     the coarse grid's cells."""
     from .thin import REPORT_SHARE, not_held
 
-    v, f = mesh.vertices, mesh.faces
-    edges = np.linalg.norm(v[f[:, [1, 2, 0]]] - v[f], axis=2).reshape(-1)
+    edges = edge_lengths(mesh.vertices, mesh.faces)
     median = float(np.median(edges[edges > 0])) if (edges > 0).any() else 1.0
     wanted = EDGE_CELLS * 2 * DEFAULT_HALF_EXTENT / median
     coarse_res = coarse.resolution
@@ -179,7 +176,7 @@ def mesh_parts(faces: np.ndarray) -> tuple[bool, np.ndarray]:
 
 def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, should_stop=never_stop,
                  rng: np.random.Generator | None = None):
-    """The spline field of a validated unit-box mesh: (SplineSDF or SparseSplineSDF, metrics)."""
+    """The spline field of a validated unit-box mesh as a plain grid: (DenseGrid or SparseGrid, metrics)."""
     v = np.ascontiguousarray(mesh.vertices, dtype=np.float64)
     f = np.ascontiguousarray(mesh.faces, dtype=np.int64)
     coarse_res = min(config.resolution, config.coarse_resolution)
@@ -188,7 +185,7 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
     several, parts = mesh_parts(f)
     values, exact = coarse_node_values(v, f, coarse_res, DEFAULT_HALF_EXTENT, COARSE_BAND, winding,
                                        several, progress, should_stop)
-    coarse = spline_from_distances(values)
+    coarse = dense_grid_from_distances(values)
     del values
     metrics = {"exact_queries": float(exact), "coarse_resolution": float(coarse_res), "fine_blocks": 0.0,
                "refined_fraction": 0.0}
@@ -230,7 +227,8 @@ def spline_field(mesh: TriangleMesh, config: FitConfig, progress=no_progress, sh
     coefficients = smoothed_coefficients(residual, band.table, band.blocks)
     metrics["exact_queries"] += float(np.isfinite(band.distance).sum())
     metrics["fine_blocks"] = float(len(band.blocks))
-    field = SparseSplineSDF(resolution, DEFAULT_HALF_EXTENT, coarse_res, band.blocks, torch.from_numpy(coefficients.astype(np.float32)), coarse)
+    field = SparseGrid(resolution, DEFAULT_HALF_EXTENT, coarse_res, band.blocks, coefficients.astype(np.float32), coarse,
+                       band.table)
     metrics["winding_queries"] = float(winding.queries)
     metrics["field_megabytes"] = field.nbytes() / 1e6
     metrics["thin"] = _thin(field, samples, sample_normals, parts[sample_faces], h)
@@ -244,17 +242,28 @@ def fit_field(
     progress=no_progress,
     should_stop=never_stop,
     rng: np.random.Generator | None = None,
+    modules: bool = True,
 ) -> FittedField:
-    """Fit a field to a validated mesh in unit-box coordinates (see mesh.Normalization)."""
+    """Fit a field to a validated mesh in unit-box coordinates (see mesh.Normalization).
+
+    modules : return the field as a torch module (what deform, smooth, sharpen, the cache and
+    checkpoints need); False keeps a spline's plain grid (values only, torch never imported) unless
+    the config itself needs torch (the MLP, refinement steps)."""
     config = config.validated()
     rng = rng if rng is not None else np.random.default_rng(config.seed)
-    torch.manual_seed(config.seed)
     seconds = {}
     t0 = time.perf_counter()
     if config.architecture == "spline":
         field, metrics = spline_field(mesh, config, progress, should_stop, rng)
     else:
-        field, metrics = MLPSDF(), {"exact_queries": 0.0}
+        field, metrics = None, {"exact_queries": 0.0}
+    if modules or needs_torch(config):
+        import torch
+
+        from .mlp import MLPSDF
+
+        torch.manual_seed(config.seed)
+        field = MLPSDF() if field is None else field.module()
     seconds["distance"] = time.perf_counter() - t0
 
     t1 = time.perf_counter()
@@ -267,8 +276,15 @@ def fit_field(
     return FittedField(field, config, metrics, seconds, thin)
 
 
-def _refine(field: SDFField, mesh: TriangleMesh, config: FitConfig, rng, progress, should_stop) -> None:
+def needs_torch(config: FitConfig) -> bool:
+    """Whether fitting with this config runs torch (the MLP, Adam refinement steps)."""
+    return config.architecture != "spline" or config.steps > 0
+
+
+def _refine(field, mesh: TriangleMesh, config: FitConfig, rng, progress, should_stop) -> None:
     """Adam on samples: |f| on the surface, normal alignment, near-surface values, eikonal."""
+    import torch
+
     distance = SignedDistance(mesh)
     surface, normals = sample_surface(mesh, max(config.batch * 8, 50_000), rng)
     near_count = config.near_samples

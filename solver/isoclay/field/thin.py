@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..geometry.derivatives import values as field_values
+from ..geometry.field_values import values as field_values
 
 #: A surface point is held when the field is negative half a fine cell inside it (a part two
 #: half-cells thick keeps a node inside it and survives marching cubes at the field's resolution).

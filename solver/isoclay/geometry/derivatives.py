@@ -71,16 +71,3 @@ def evaluate(field, points, with_hessian: bool = False, chunk: int = CHUNK) -> F
         np.concatenate(grads) if grads else np.zeros((0, 3)),
         (np.concatenate(hess) if hess else np.zeros((0, 3, 3))) if with_hessian else None,
     )
-
-
-def values(field, points, chunk: int = 262144) -> np.ndarray:
-    """(n,) float32 field values, no derivatives (fast path for extraction)."""
-    fast = getattr(field, "fast_values", None)
-    if fast is not None:
-        return np.concatenate([fast(points[i : i + chunk]) for i in range(0, len(points), chunk)]) if len(points) else np.zeros(0, np.float32)
-    x = as_points(points)
-    out = np.empty(len(x), dtype=np.float32)
-    with torch.no_grad():
-        for start in range(0, len(x), chunk):
-            out[start : start + chunk] = field(x[start : start + chunk]).numpy()
-    return out

@@ -81,7 +81,7 @@ def sample_level_set(
     points = reject_for_uniformity(projected[close], rng)
     if len(points) > count:
         points = points[rng.choice(len(points), count, replace=False)]
-    from .derivatives import values
+    from .field_values import values
 
     res = np.abs(values(field, points)).astype(np.float64)
     spread = density_spread(points) if len(points) > 20 else float("nan")

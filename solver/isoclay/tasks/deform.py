@@ -32,7 +32,7 @@ import numpy as np
 from ..energies.elastic import Constraints, ElasticSystem, SolveSettings
 from ..energies.mesh_distortion import edge_bend, face_stretch, flipped_faces
 from ..errors import InvalidInput
-from ..geometry.derivatives import values as field_values
+from ..geometry.field_values import values as field_values
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
 from ..warp.lattice import SplineLattice

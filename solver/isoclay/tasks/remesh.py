@@ -15,6 +15,9 @@ from ..mesh import measures
 from ..mesh.types import TriangleMesh
 from .base import TaskResult, check_param_names, check_stop
 
+#: Remesh reads field values only (extraction, the thin-part check): pipeline.run_edit may hand it
+#: the fitted spline as a plain grid, so a command-line rebuild never imports torch.
+VALUES_ONLY = True
 #: A closed surface needs at least a tetrahedron's 4 faces.
 MIN_TARGET_FACES = 4
 #: The wire carries at most 20,000,000 rows per array (wire.MAX_DIM): a result cannot have more faces.
