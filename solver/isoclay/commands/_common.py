@@ -100,9 +100,18 @@ def load_input(path: str, ui) -> Prepared:
     return prepared
 
 
-def write_outputs(outcome, out: Path, report_path: str | None, ui, keep_topology: bool = False) -> None:
-    """Write the result mesh (UVs/materials kept when the topology is the input's) and the report."""
-    write_mesh(out, outcome.mesh, keep_source=keep_topology)
+def write_outputs(outcome, out: Path, report_path: str | None, ui, keep_topology: bool = False,
+                  prepared: Prepared | None = None) -> None:
+    """Write the result mesh (UVs/materials kept when the topology is the input's) and the report.
+
+    keep_topology with the input ``prepared``: the input's own faces are written, as given (not the
+    validated copy, which drops degenerate faces and turns inward-facing parts round), also for
+    a plain PLY that was read without a trimesh source object."""
+    mesh = outcome.mesh
+    given = prepared.world if prepared is not None else None
+    if keep_topology and given is not None and given.source is None and mesh.n_vertices == given.n_vertices:
+        mesh = TriangleMesh(mesh.vertices, given.faces, mesh.vertex_values, None)
+    write_mesh(out, mesh, keep_source=keep_topology)
     seconds = outcome.report.get("seconds", {}).get("total", float("nan"))
     ui.info(f"wrote {out} ({outcome.mesh.n_vertices} vertices, {outcome.mesh.n_faces} faces) in {seconds:.1f} s")
     if report_path:

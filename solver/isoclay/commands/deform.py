@@ -51,5 +51,5 @@ def run(args, ui) -> int:
     line = summary_line(outcome.metrics)
     if line:
         ui.warn(line)
-    write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology)
+    write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology, prepared=prepared)
     return 0

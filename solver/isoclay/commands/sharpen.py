@@ -30,5 +30,5 @@ def run(args, ui) -> int:
         params["radius"] = args.radius
     prepared = load_input(args.mesh, ui)
     outcome = run_task(args, ui, "sharpen", params, prepared)
-    write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology)
+    write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology, prepared=prepared)
     return 0

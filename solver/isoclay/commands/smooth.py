@@ -33,5 +33,5 @@ def run(args, ui) -> int:
         params["resolution"] = args.resolution
     prepared = load_input(args.mesh, ui)
     outcome = run_task(args, ui, "smooth", params, prepared)
-    write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology)
+    write_outputs(outcome, out, args.report, ui, keep_topology=args.keep_topology, prepared=prepared)
     return 0
