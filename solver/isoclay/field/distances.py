@@ -200,10 +200,12 @@ def _try_face(v, f, normals, t, px, py, pz, b, li, lj, lk, band2, dist2, side, f
 
 
 @numba.njit(cache=True)
-def _propagate(v, f, normals, origin, cell, band, shape, table, blocks, dist2, side, face, backward):
+def _propagate(v, f, normals, origin, cell, band, shape, table, blocks, dist2, side, face, backward, settled_within):
     """One sweep: every node tries the nearest faces of its six neighbours (in place, so a
-    forward and a backward sweep carry a face across the band)."""
+    forward and a backward sweep carry a face across the band). Nodes within ``settled_within``
+    of their face got the exact nearest from the scatter (it tested every triangle that near)."""
     band2 = band * band
+    settled = settled_within * settled_within
     n = blocks.shape[0]
     sx, sy, sz = shape[0], shape[1], shape[2]
     for q in range(n):
@@ -213,6 +215,8 @@ def _propagate(v, f, normals, origin, cell, band, shape, table, blocks, dist2, s
             li, lj, lk = rr // (BLOCK * BLOCK), (rr // BLOCK) % BLOCK, rr % BLOCK
             i, j, k = blocks[b, 0] * BLOCK + li, blocks[b, 1] * BLOCK + lj, blocks[b, 2] * BLOCK + lk
             if i >= sx or j >= sy or k >= sz:  # the padding of blocks past the grid's end
+                continue
+            if dist2[b, li, lj, lk] <= settled:  # the scatter's own nearest: no face is nearer
                 continue
             px, py, pz = origin[0] + cell * i, origin[1] + cell * j, origin[2] + cell * k
             for a in range(6):
@@ -241,18 +245,19 @@ def _propagate(v, f, normals, origin, cell, band, shape, table, blocks, dist2, s
 
 
 @numba.njit(cache=True, parallel=True)
-def _descend(v, f, normals, origin, cell, band, blocks, dist2, side, face, vf_start, vf_faces):
+def _descend(v, f, normals, origin, cell, band, blocks, dist2, side, face, vf_start, vf_faces, settled_within):
     """Greedy walk of each node's nearest face over faces sharing a vertex, until no neighbour
     is nearer: the spread faces are a cell or so off, the walk finds the true nearest. Each node
     reads and writes only its own entries, so blocks run on all threads (the same result as one
     thread; on the 3.6M-face scan 13.1 s on one thread)."""
     band2 = band * band
+    settled = settled_within * settled_within
     for b in numba.prange(blocks.shape[0]):
         for li in range(BLOCK):
             for lj in range(BLOCK):
                 for lk in range(BLOCK):
                     t = face[b, li, lj, lk]
-                    if t < 0:
+                    if t < 0 or dist2[b, li, lj, lk] <= settled:  # no walk needed from the exact nearest
                         continue
                     px = origin[0] + cell * (blocks[b, 0] * BLOCK + li)
                     py = origin[1] + cell * (blocks[b, 1] * BLOCK + lj)
@@ -278,11 +283,23 @@ def _descend(v, f, normals, origin, cell, band, blocks, dist2, side, face, vf_st
 
 
 def _vertex_faces(n_vertices: int, f: np.ndarray):
-    """CSR of the faces around each vertex: (start (n+1,), faces (3m,))."""
-    order = np.argsort(f.reshape(-1), kind="stable")
+    """CSR of the faces around each vertex, in face order: (start (n+1,), faces (3m,))."""
     counts = np.bincount(f.reshape(-1), minlength=n_vertices)
     start = np.concatenate([[0], np.cumsum(counts)]).astype(np.int64)
-    return start, (order // 3).astype(np.int64)
+    return start, _fill_vertex_faces(f, start)
+
+
+@numba.njit(cache=True)
+def _fill_vertex_faces(f, start):
+    """Counting sort of the corners by vertex (one pass, stable: the same order as a stable argsort)."""
+    at = start[:-1].copy()
+    out = np.empty(f.shape[0] * 3, np.int64)
+    for t in range(f.shape[0]):
+        for c in range(3):
+            u = f[t, c]
+            out[at[u]] = t
+            at[u] += 1
+    return out
 
 
 #: Above this many triangle-node pairs for a full-band scatter (72M took 3.0 s against 10.8 s by
@@ -295,10 +312,51 @@ SLABS_PER_THREAD = 4
 SWEEPS = 2
 
 
+#: Above this many faces the triangles (and their vertices) are renumbered in the order of the
+#: grid's blocks before scattering, so each kernel reads neighbouring memory: a scan's faces are
+#: stored in scanning or subdivision order, scattered over the grid (3.6M-face scan: see bench).
+SPATIAL_ORDER_FACES = 200_000
+
+
+def _in_block_order(v, f, origin, cell: float, nb) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(vertices, faces, order): faces sorted by the grid block of their first corner (stable),
+    vertices renumbered by first use in that order (unused ones dropped); order[new] = old face."""
+    corner = np.clip(np.floor((v[f[:, 0]] - origin) / (cell * BLOCK)).astype(np.int64), 0, np.asarray(nb) - 1)
+    key = (corner[:, 0] * nb[1] + corner[:, 1]) * nb[2] + corner[:, 2]
+    order = np.argsort(key, kind="stable")
+    faces, kept = _renumber_by_first_use(f[order], len(v))
+    return np.ascontiguousarray(v[kept]), faces, order
+
+
+@numba.njit(cache=True)
+def _renumber_by_first_use(f, n_vertices):
+    new = np.full(n_vertices, -1, np.int64)
+    kept = np.empty(n_vertices, np.int64)
+    out = np.empty_like(f)
+    k = 0
+    for t in range(f.shape[0]):
+        for c in range(3):
+            u = f[t, c]
+            if new[u] < 0:
+                new[u] = k
+                kept[k] = u
+                k += 1
+            out[t, c] = new[u]
+    return out, kept[:k]
+
+
+@numba.njit(cache=True)
 def _scatter_pairs(v, f, cell, band) -> float:
-    lo = np.minimum(np.minimum(v[f[:, 0]], v[f[:, 1]]), v[f[:, 2]])
-    hi = np.maximum(np.maximum(v[f[:, 0]], v[f[:, 1]]), v[f[:, 2]])
-    return float(np.prod(np.floor((hi - lo + 2 * band) / cell) + 1, axis=1).sum())
+    """Triangle-node pairs a full-band scatter would test: the nodes of each triangle's box grown by the band."""
+    total = 0.0
+    for t in range(f.shape[0]):
+        pairs = 1.0
+        for a in range(3):
+            lo = min(v[f[t, 0], a], v[f[t, 1], a], v[f[t, 2], a])
+            hi = max(v[f[t, 0], a], v[f[t, 1], a], v[f[t, 2], a])
+            pairs *= np.floor((hi - lo + 2 * band) / cell) + 1
+        total += pairs
+    return total
 
 
 @numba.njit(cache=True)
@@ -359,8 +417,20 @@ def distance_to_faces(points: np.ndarray, face_ids: np.ndarray, vertices: np.nda
 
 def unit_normals(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
     """(m, 3) float64 unit face normals (zero for degenerate faces)."""
-    n = np.cross(vertices[faces[:, 1]] - vertices[faces[:, 0]], vertices[faces[:, 2]] - vertices[faces[:, 0]])
-    return n / np.maximum(np.linalg.norm(n, axis=1, keepdims=True), 1e-300)
+    return _unit_normals(np.ascontiguousarray(vertices, dtype=np.float64), np.ascontiguousarray(faces, dtype=np.int64))
+
+
+@numba.njit(cache=True, parallel=True)
+def _unit_normals(v, f):
+    out = np.empty((f.shape[0], 3))
+    for t in numba.prange(f.shape[0]):
+        a, b, c = f[t, 0], f[t, 1], f[t, 2]
+        ux, uy, uz = v[b, 0] - v[a, 0], v[b, 1] - v[a, 1], v[b, 2] - v[a, 2]
+        wx, wy, wz = v[c, 0] - v[a, 0], v[c, 1] - v[a, 1], v[c, 2] - v[a, 2]
+        nx, ny, nz = uy * wz - uz * wy, uz * wx - ux * wz, ux * wy - uy * wx
+        length = max(np.sqrt(nx * nx + ny * ny + nz * nz), 1e-300)
+        out[t, 0], out[t, 1], out[t, 2] = nx / length, ny / length, nz / length
+    return out
 
 
 def band_distances(vertices, faces, origin, cell: float, shape, band: float, allowed: np.ndarray | None = None) -> BandDistances:
@@ -374,6 +444,9 @@ def band_distances(vertices, faces, origin, cell: float, shape, band: float, all
     origin = np.asarray(origin, dtype=np.float64)
     shape = np.asarray(shape, dtype=np.int64)
     nb = tuple(int(s) for s in (shape + BLOCK - 1) // BLOCK)
+    order = None
+    if len(f) > SPATIAL_ORDER_FACES:
+        v, f, order = _in_block_order(v, f, origin, float(cell), nb)
     if allowed is None:
         allowed = np.ones(nb, dtype=np.bool_)
     normals = unit_normals(v, f)
@@ -390,12 +463,16 @@ def band_distances(vertices, faces, origin, cell: float, shape, band: float, all
     if _scatter_pairs(v, f, cell, band) <= MAX_SCATTER_PAIRS:
         _scatter(v, f, normals, origin, float(cell), float(band), shape, table, dist2, side, face, slabs)
     else:  # many triangles per cell (a scan): near nodes by scatter, the rest by spreading faces
-        _scatter(v, f, normals, origin, float(cell), float(min(band, cell)), shape, table, dist2, side, face, slabs)
+        near = float(min(band, cell))
+        _scatter(v, f, normals, origin, float(cell), near, shape, table, dist2, side, face, slabs)
         for _ in range(SWEEPS):
             for backward in (False, True):
-                _propagate(v, f, normals, origin, float(cell), float(band), shape, table, blocks, dist2, side, face, backward)
+                _propagate(v, f, normals, origin, float(cell), float(band), shape, table, blocks, dist2, side, face,
+                           backward, near)
         start, around = _vertex_faces(len(v), f)
-        _descend(v, f, normals, origin, float(cell), float(band), blocks, dist2, side, face, start, around)
+        _descend(v, f, normals, origin, float(cell), float(band), blocks, dist2, side, face, start, around, near)
+    if order is not None:  # back to the caller's face numbers
+        face = np.where(face >= 0, order[np.maximum(face, 0)], -1).astype(np.int32)
     used = np.isfinite(dist2).reshape(n, -1).any(axis=1)
     if not used.all():  # blocks the plane test let through but no node of which lies in the band
         blocks, dist2, side, face = blocks[used], dist2[used], side[used], face[used]
