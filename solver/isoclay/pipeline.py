@@ -137,7 +137,7 @@ def run_edit(
 
     correspondence : also map each result vertex to its source point on the input (what carries
         UVs and materials in Blender); callers that write plain mesh files skip it (13 s of a
-        3.6M-face scan's rebuild).
+        3.0M-face scan's rebuild).
     plain_field : a task that reads field values only (its module sets VALUES_ONLY: remesh) gets
         the fitted spline as a plain grid and torch is never imported (2.8 s and 220 MB of a
         command-line rebuild); outcome.field is then that grid. Callers that keep the field

@@ -36,7 +36,7 @@ def _face_areas(v, f):
 
 
 def edge_lengths(vertices: np.ndarray, faces: np.ndarray) -> np.ndarray:
-    """(3m,) length of each face's edges 0-1, 1-2, 2-0 in face order (compiled: a 3.6M-face scan in
+    """(3m,) length of each face's edges 0-1, 1-2, 2-0 in face order (compiled: a 3.0M-face scan in
     0.1 s against 2 s by numpy's fancy indexing)."""
     return _edge_lengths(np.ascontiguousarray(vertices, dtype=np.float64), np.ascontiguousarray(faces, dtype=np.int64))
 
