@@ -11,6 +11,7 @@ from ..bounds import shown
 from ..errors import InvalidInput
 from ..extract import bounds_of, decimate, extract_mesh
 from ..extract.hole_fill import FILL_MODES, continue_fills
+from ..extract.surface_snap import snap_to_scan
 from ..mesh import measures
 from ..mesh.types import TriangleMesh
 from .base import TaskResult, check_param_names, check_stop
@@ -77,9 +78,14 @@ def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> Tas
     stats: dict = {}
     out = extract_mesh(field, lo, hi, resolution, progress, should_stop, stats)
     seconds = {"extract": time.perf_counter() - t0}
+    side = float(np.max(np.asarray(hi) - np.asarray(lo)))
+    check_stop(should_stop, "laying the result onto the scan")
+    t1 = time.perf_counter()
+    out, snap = snap_to_scan(out, mesh, side / resolution)
+    if snap.vertices_projected:
+        seconds["snap"] = time.perf_counter() - t1
     check_stop(should_stop, "hole fill")
     t1 = time.perf_counter()
-    side = float(np.max(np.asarray(hi) - np.asarray(lo)))
     out, fills = continue_fills(out, mesh, FILL_ON_SURFACE_CELLS * side / resolution, config.hole_fill, side)
     if fills.holes:
         seconds["hole_fill"] = time.perf_counter() - t1
@@ -93,6 +99,9 @@ def run(field, mesh: TriangleMesh, config: Config, progress, should_stop) -> Tas
         "evaluated_fraction": stats["evaluations"] / stats["dense_nodes"],
         "volume_change": measures.signed_volume(out.vertices, out.faces) / max(abs(measures.signed_volume(mesh.vertices, mesh.faces)), 1e-300) - 1.0,
     }
+    if snap.vertices_projected:
+        metrics.update(vertices_on_scan=float(snap.vertices_projected), snap_held_back=float(snap.vertices_held_back),
+                       snap_largest_move=snap.largest_move)
     if fills.holes:
         metrics.update(holes_filled=float(fills.holes), holes_continued=float(fills.continued),
                        fill_vertices_moved=float(fills.vertices_moved), fill_largest_move=fills.largest_move)
